@@ -1,0 +1,111 @@
+"""``leadline score``: fit on the start of a CSV, stream the rest, write the scores."""
+
+from __future__ import annotations
+
+import csv
+import math
+import sys
+from datetime import datetime, timezone
+from typing import TextIO
+
+import numpy as np
+
+from leadline.detector.durations import parse_duration_s
+from leadline.detector.errors import DataError, SpecError
+from leadline.detector.fitting import fit
+from leadline.detector.grid import to_grid
+from leadline.detector.spec import ModelSpec
+
+from .series_csv import read_series_csv
+
+COLUMNS = ("timestamp", "value", "forecast", "error", "variance", "z", "lower", "upper")
+
+
+def train_slots(train: str, interval_s: float) -> int:
+    """``--train``: a number of slots, or a span such as ``14d``."""
+    text = str(train).strip()
+    if text.isdigit():
+        return int(text)
+    try:
+        return int(round(parse_duration_s(text) / interval_s))
+    except SpecError as exc:
+        raise DataError(f"--train {train!r}: expected a number of points or a span such as '14d' ({exc})") from exc
+
+
+def build_spec(order: str, seasonal: str | None, trend: str | None) -> ModelSpec | str:
+    if order.strip().lower() == "auto":
+        if seasonal:
+            raise SpecError("--seasonal cannot be combined with --order auto")
+        return "auto"
+    return ModelSpec.parse(order, seasonal, trend)
+
+
+def _iso(epoch_s: float) -> str:
+    return datetime.fromtimestamp(epoch_s, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+
+
+def _fmt(x: float) -> str:
+    return "" if math.isnan(x) else repr(float(x))
+
+
+def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
+    times, values = read_series_csv(args.input, args.series)
+    grid = to_grid(times, values, interval_s=parse_duration_s(args.interval) if args.interval else None)
+    n_train = train_slots(args.train, grid.interval_s)
+    if n_train >= grid.values.size:
+        raise DataError(f"--train {args.train} covers all {grid.values.size} slots; nothing is left to score")
+    spec = build_spec(args.order, args.seasonal, args.trend)
+    model = fit(grid.values[:n_train], spec)
+    print(f"leadline score: fitted {model.spec.label} on {n_train} slots "
+          f"(interval {grid.interval_s:g} s); AICc {model.aicc:.2f}, Ljung-Box p {model.ljung_box_pvalue:.3g}",
+          file=err)
+    if model.selection is not None:
+        print(f"  chosen because: {model.selection.reason}", file=err)
+    for problem in model.problems:
+        print(f"  fit problem: {problem}", file=err)
+    counts = {k: v for k, v in grid.counts.as_dict().items() if v and k != "placed"}
+    if counts:
+        print(f"  grid: {counts}", file=err)
+    stream = model.stream(level=args.level)
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(COLUMNS)
+    epoch = grid.epoch_s
+    for t in range(n_train, grid.values.size):
+        inn = stream.update(grid.values[t])
+        writer.writerow([_iso(epoch[t]), _fmt(inn.value), _fmt(inn.forecast), _fmt(inn.error), _fmt(inn.variance),
+                         _fmt(inn.z), _fmt(inn.lower), _fmt(inn.upper)])
+    return 0
+
+
+def add_parser(subparsers) -> None:
+    p = subparsers.add_parser("score", help="fit a model on the start of a CSV and score the rest",
+                              description="Fit on the first --train points of a CSV (timestamp,value), stream the "
+                                          "rest one reading at a time, and write forecast, error, variance, z and "
+                                          "the forecast interval for each reading.")
+    p.add_argument("input", nargs="?", help="CSV with a header timestamp,value (or timestamp,series,value); "
+                                            "default: the bundled example")
+    p.add_argument("--series", help="which series to score when the CSV has a 'series' column")
+    p.add_argument("--train", default="2000", help="points to fit on, or a span such as 14d (default 2000)")
+    p.add_argument("--order", default="auto", help="p,d,q or auto (default auto)")
+    p.add_argument("--seasonal", help="P,D,Q,s for a seasonal ARIMA with a short period (s <= 24)")
+    p.add_argument("--trend", choices=["n", "c", "t", "ct"], help="trend (default: constant unless differenced)")
+    p.add_argument("--interval", help="nominal interval such as 15min (default: median spacing)")
+    p.add_argument("--level", type=float, default=0.95, help="forecast interval coverage (default 0.95)")
+    p.add_argument("--out", help="write the scores here instead of standard output")
+    p.set_defaults(handler=_handle)
+
+
+def _handle(args) -> int:
+    if args.input is None:
+        from .examples import example_path
+
+        args.input = str(example_path("booster-pressure.csv"))
+    if not 0 < args.level < 1:
+        raise DataError(f"--level must be between 0 and 1, got {args.level}")
+    if args.out:
+        try:
+            with open(args.out, "w", newline="", encoding="utf-8") as handle:
+                return run_score(args, handle)
+        except OSError as exc:
+            raise DataError(f"--out {args.out}: cannot write: {exc.strerror}") from exc
+    return run_score(args)

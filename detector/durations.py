@@ -1,0 +1,32 @@
+"""Durations written as text: ``"15min"``, ``"1d"``, ``"7d"``, ``"8h"``, ``"90s"``."""
+
+from __future__ import annotations
+
+import re
+
+from .errors import SpecError
+
+_UNITS_S = {"s": 1.0, "sec": 1.0, "min": 60.0, "m": 60.0, "h": 3600.0, "d": 86400.0, "w": 604800.0}
+_PATTERN = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([a-z]+)\s*$")
+
+
+def parse_duration_s(text: str | float | int) -> float:
+    """Seconds in a duration such as ``"1d"`` (units: s, min or m, h, d, w).
+
+    A bare number is taken as seconds.
+
+    Raises
+    ------
+    SpecError
+        Naming the text and the units allowed.
+    """
+    if isinstance(text, (int, float)) and not isinstance(text, bool):
+        seconds = float(text)
+    else:
+        match = _PATTERN.match(str(text).lower())
+        if match is None or match.group(2) not in _UNITS_S:
+            raise SpecError(f"duration {text!r} is not a number followed by one of s, min, h, d, w (e.g. '15min', '7d')")
+        seconds = float(match.group(1)) * _UNITS_S[match.group(2)]
+    if seconds <= 0:
+        raise SpecError(f"duration {text!r} must be positive")
+    return seconds

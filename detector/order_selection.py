@@ -1,0 +1,259 @@
+"""Choose a feed's ARIMA orders automatically ("auto").
+
+The search follows Hyndman & Khandakar (2008), "Automatic time series
+forecasting: the forecast package for R", Journal of Statistical Software
+27(3), section 3.2:
+
+1. d: repeated KPSS tests (Kwiatkowski et al. 1992) at the 5% level; difference
+   while the test rejects level stationarity, up to d = 2.
+2. Start from ARIMA(2,d,2), (0,d,0), (1,d,0) and (0,d,1), with a constant
+   (a drift when d = 1) unless d = 2.
+3. Step from the best so far: p or q by +-1, both by +-1, and the constant
+   toggled; keep the first variation with a lower AICc and repeat until
+   none improves.
+
+Candidates that are not stationary or not invertible (a root of the AR or
+MA polynomial within 1.001 of the unit circle, the bound used by the same
+paper) or that fail to converge are kept in the table but cannot win.
+The search is bounded by ``max_p``, ``max_q`` and ``max_fits``.
+
+Notes
+-----
+AICc = AIC + 2k(k + 1)/(n - k - 1), see :mod:`.fitting`.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .errors import FitError, SpecError
+from .spec import ModelSpec
+
+KPSS_ALPHA = 0.05
+ROOT_MARGIN = 1.001
+
+
+@dataclass
+class Candidate:
+    """One row of the AICc table."""
+
+    spec: ModelSpec
+    aicc: float
+    status: str  # "ok", "not converged", "near unit root", "failed: ..."
+    fitted: Any = field(default=None, repr=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"model": self.spec.label, "spec": self.spec.to_dict(), "aicc": self.aicc, "status": self.status}
+
+
+@dataclass
+class OrderSelection:
+    """What the search tried and why the chosen model won."""
+
+    d: int
+    kpss: list[dict[str, float]]
+    candidates: list[Candidate]
+    chosen: ModelSpec
+    reason: str
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "d": self.d,
+            "kpss": self.kpss,
+            "chosen": self.chosen.label,
+            "reason": self.reason,
+            "candidates": [c.to_dict() for c in sorted(self.candidates, key=_sort_key)],
+            **self.extra,
+        }
+
+    def table(self) -> str:
+        """The AICc table as aligned text, best first."""
+        rows = sorted(self.candidates, key=_sort_key)
+        width = max(len(c.spec.label) for c in rows)
+        lines = [f"{'model':<{width}}  {'AICc':>12}  status"]
+        for c in rows:
+            lines.append(f"{c.spec.label:<{width}}  {c.aicc:>12.3f}  {c.status}")
+        return "\n".join(lines)
+
+
+def _sort_key(c: Candidate) -> tuple[int, float]:
+    return (0 if c.status == "ok" else 1, c.aicc if math.isfinite(c.aicc) else math.inf)
+
+
+def kpss_pvalue(x: np.ndarray) -> tuple[float, float]:
+    """KPSS level-stationarity statistic and p-value (p is clipped to [0.01, 0.1])."""
+    from statsmodels.tsa.stattools import kpss
+
+    with warnings.catch_warnings():
+        # statsmodels warns when p falls outside its table and clips it; the
+        # clipped value is all the decision needs.
+        warnings.simplefilter("ignore")
+        stat, p, _, _ = kpss(x, regression="c", nlags="auto")
+    return float(stat), float(p)
+
+
+def choose_d(y: np.ndarray, max_d: int = 2) -> tuple[int, list[dict[str, float]]]:
+    """Number of differences by repeated KPSS tests at 5% (Hyndman & Khandakar 2008)."""
+    x = y[np.isfinite(y)]
+    tests = []
+    d = 0
+    while d < max_d:
+        if x.size < 20:
+            break
+        stat, p = kpss_pvalue(x)
+        tests.append({"d": d, "statistic": stat, "pvalue": p})
+        if p >= KPSS_ALPHA:
+            break
+        d += 1
+        x = np.diff(x)
+    return d, tests
+
+
+def _near_unit_root(fitted) -> bool:
+    p, _, q = fitted.spec.order
+    params = fitted.params
+    ar = [params.get(f"ar.L{i}", 0.0) for i in range(1, p + 1)]
+    ma = [params.get(f"ma.L{i}", 0.0) for i in range(1, q + 1)]
+    for coefs, sign in ((ar, -1.0), (ma, 1.0)):
+        if any(coefs):
+            poly = np.r_[1.0, sign * np.asarray(coefs)]  # 1 -+ c1 z -+ ...
+            roots = np.roots(poly[::-1])
+            if roots.size and np.min(np.abs(roots)) < ROOT_MARGIN:
+                return True
+    return False
+
+
+def _evaluate(y, spec, tried, fit_kwargs) -> Candidate:
+    from .fitting import fit_spec
+
+    key = (spec.order, spec.seasonal, spec.trend)
+    if key in tried:
+        return tried[key]
+    try:
+        fitted = fit_spec(y, spec, **fit_kwargs)
+    except FitError as exc:
+        cand = Candidate(spec, math.inf, f"failed: {exc}")
+    else:
+        if not fitted.converged:
+            status = "not converged"
+        elif _near_unit_root(fitted):
+            status = "near unit root"
+        else:
+            status = "ok"
+        cand = Candidate(spec, fitted.aicc, status, fitted)
+    tried[key] = cand
+    return cand
+
+
+def stepwise_search(
+    y: np.ndarray,
+    d: int,
+    *,
+    seasonal: tuple[int, int, int, int] | None = None,
+    max_p: int = 4,
+    max_q: int = 4,
+    max_fits: int = 24,
+    fit_kwargs: dict[str, Any] | None = None,
+    tried: dict | None = None,
+) -> dict:
+    """The stepwise AICc search for fixed d; returns every candidate fitted."""
+    fit_kwargs = fit_kwargs or {}
+    tried = {} if tried is None else tried
+    seasonal_d = seasonal[1] if seasonal else 0
+    allow_constant = d + seasonal_d <= 1
+
+    def make(p, q, constant):
+        try:
+            return ModelSpec((p, d, q), seasonal, "c" if constant and allow_constant else "n")
+        except SpecError:
+            return None
+
+    start = [make(2, 2, True), make(0, 0, True), make(1, 0, True), make(0, 1, True)]
+    if not allow_constant:
+        start = [make(2, 2, False), make(0, 0, False), make(1, 0, False), make(0, 1, False)]
+    budget = max_fits
+    best = None
+    for spec in start:
+        if spec is None:
+            continue
+        cand = _evaluate(y, spec, tried, fit_kwargs)
+        budget -= 1
+        if cand.status == "ok" and (best is None or cand.aicc < best.aicc):
+            best = cand
+    if best is None:
+        return tried
+    improved = True
+    while improved and budget > 0:
+        improved = False
+        p, _, q = best.spec.order
+        constant = best.spec.trend != "n"
+        moves = [(p + 1, q, constant), (p - 1, q, constant), (p, q + 1, constant), (p, q - 1, constant),
+                 (p + 1, q + 1, constant), (p - 1, q - 1, constant), (p + 1, q - 1, constant),
+                 (p - 1, q + 1, constant)]
+        if allow_constant:
+            moves.append((p, q, not constant))
+        for np_, nq, nc in moves:
+            if not (0 <= np_ <= max_p and 0 <= nq <= max_q) or budget <= 0:
+                continue
+            spec = make(np_, nq, nc)
+            if spec is None:
+                continue
+            key = (spec.order, spec.seasonal, spec.trend)
+            fresh = key not in tried
+            cand = _evaluate(y, spec, tried, fit_kwargs)
+            budget -= int(fresh)
+            if cand.status == "ok" and cand.aicc < best.aicc:
+                best = cand
+                improved = True
+                break
+    return tried
+
+
+def explain(candidates: list[Candidate], chosen: Candidate, preface: str) -> str:
+    ok = sorted((c for c in candidates if c.status == "ok"), key=_sort_key)
+    runner = next((c for c in ok if c is not chosen), None)
+    text = f"{preface}; {chosen.spec.label} has the lowest AICc ({chosen.aicc:.2f}) of {len(candidates)} candidates"
+    if runner is not None:
+        text += f", {runner.aicc - chosen.aicc:.2f} below the next best, {runner.spec.label}"
+    excluded = [c for c in candidates if c.status != "ok"]
+    if excluded:
+        text += f"; {len(excluded)} excluded (not converged, near a unit root or failed)"
+    return text
+
+
+def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any = None,
+                 max_p: int = 4, max_q: int = 4, max_fits: int = 24):
+    """Choose d by KPSS and (p, q, constant) by stepwise AICc; return the winning fit.
+
+    Returns
+    -------
+    FittedModel
+        With ``selection`` set to an :class:`OrderSelection`.
+    """
+    d, tests = choose_d(y)
+    kwargs = {"calendar": calendar, "timestamps_epoch_s": timestamps_epoch_s}
+    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=max_fits, fit_kwargs=kwargs)
+    candidates = list(tried.values())
+    ok = [c for c in candidates if c.status == "ok"]
+    if not ok:
+        raise FitError("no candidate model could be fitted: " + "; ".join(f"{c.spec.label}: {c.status}"
+                                                                          for c in candidates))
+    chosen = min(ok, key=lambda c: c.aicc)
+    kpss_text = ", ".join(f"d={t['d']}: p={t['pvalue']:.3f}" for t in tests) or "series too short to test"
+    reason = explain(candidates, chosen, f"d = {d} from KPSS at 5% ({kpss_text})")
+    selection = OrderSelection(d, tests, candidates, chosen.spec, reason)
+    return _with_selection(chosen.fitted, selection)
+
+
+def _with_selection(fitted, selection):
+    from dataclasses import replace
+
+    for c in selection.candidates:
+        c.fitted = None  # keep the table light; the winner is returned
+    return replace(fitted, selection=selection)
