@@ -45,6 +45,7 @@ import io
 import json
 import math
 import struct
+import zipfile
 from typing import Any, Protocol
 
 import numpy as np
@@ -377,7 +378,7 @@ class Stream:
                 arrays = {name: archive[name] for name in archive.files}
             system = LinearSystem.from_arrays(arrays)
             state, cov = arrays["state"], arrays["cov"]
-        except (ValueError, KeyError, UnicodeDecodeError, OSError) as exc:
+        except (ValueError, KeyError, UnicodeDecodeError, OSError, zipfile.BadZipFile) as exc:
             raise StateFormatError(f"stream state is corrupt: {exc}") from exc
         regression = None
         if header.get("regression") is not None:

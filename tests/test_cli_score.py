@@ -1,0 +1,83 @@
+"""``leadline score`` end to end, and its error messages."""
+
+import csv
+import re
+import subprocess
+import sys
+
+from datetime import datetime, timezone
+
+import numpy as np
+import pytest
+
+from leadline.adapters.cli import main
+from leadline.detector.fitting import fit
+from leadline.detector.simulate import simulate_arima
+from leadline.detector.spec import ModelSpec
+from reference import batch_filter
+
+
+def write_feed(path, values, start=1_780_000_000, step=900, rows=None):
+    lines = ["timestamp,value"]
+    for i, v in enumerate(values):
+        lines.append(f"{start + i * step},{'' if np.isnan(v) else repr(float(v))}")
+    if rows:
+        lines.extend(rows)
+    path.write_text("\n".join(lines) + "\n")
+
+
+def test_score_writes_the_innovations_of_the_batch_filter(tmp_path):
+    y = simulate_arima(400, ar=[0.7], mean=30.0, seed=9)
+    y[350] = np.nan
+    write_feed(tmp_path / "feed.csv", y)
+    out = tmp_path / "scores.csv"
+    assert main(["score", str(tmp_path / "feed.csv"), "--train", "300", "--order", "1,0,0",
+                 "--out", str(out)]) == 0
+    with out.open() as handle:
+        rows = list(csv.DictReader(handle))
+    assert len(rows) == 100
+    first = datetime.fromtimestamp(1_780_000_000 + 300 * 900, tz=timezone.utc)
+    assert datetime.fromisoformat(rows[0]["timestamp"]) == first
+    model = fit(y[:300], ModelSpec.ar(1))
+    ref = batch_filter(y, model)  # reference: statsmodels batch filter
+    z = np.array([float(r["z"]) if r["z"] else np.nan for r in rows])
+    np.testing.assert_allclose(z[np.isfinite(z)], ref.standardized_forecasts_error[0, 300:][np.isfinite(z)],
+                               rtol=1e-6)
+    assert rows[50]["error"] == "" and rows[50]["variance"] != ""
+    assert float(rows[0]["lower"]) < float(rows[0]["forecast"]) < float(rows[0]["upper"])
+
+
+@pytest.mark.parametrize("extra, message", [
+    (["1780099999,abc"], "value 'abc' is not a number"),
+    (["1780000000,1.0"], "repeats the previous row|earlier than the previous"),
+    (["yesterday,1.0"], "neither ISO 8601 nor epoch seconds"),
+    (["1780999999,1.0,7"], "expected 2 columns"),
+])
+def test_bad_rows_are_reported_with_their_line(tmp_path, capsys, extra, message):
+    write_feed(tmp_path / "bad.csv", simulate_arima(60, seed=1), rows=extra)
+    assert main(["score", str(tmp_path / "bad.csv"), "--train", "30", "--order", "0,0,0"]) == 2
+    err = capsys.readouterr().err
+    assert "bad.csv:62:" in err
+    assert re.search(message, err)
+
+
+def test_unsorted_rows_name_what_was_expected(tmp_path, capsys):
+    write_feed(tmp_path / "u.csv", [1.0, 2.0], rows=["1779990000,3.0"])
+    assert main(["score", str(tmp_path / "u.csv"), "--train", "1"]) == 2
+    assert "u.csv:4: timestamp '1779990000' is earlier than the previous row; expected rows sorted by time" \
+        in capsys.readouterr().err
+
+
+def test_bundled_example_runs_without_a_traceback():
+    # As a user would run it: the console script on the bundled example.
+    result = subprocess.run([sys.executable, "-m", "leadline.adapters.cli", "score", "--order", "1,0,1"],
+                            capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr
+    lines = result.stdout.splitlines()
+    assert lines[0] == "timestamp,value,forecast,error,variance,z,lower,upper"
+    z = np.array([float(line.split(",")[5]) for line in lines[1:]])
+    # The planted spike (invented Cobbleford booster station) stands out.
+    assert np.nanmax(np.abs(z)) > 10
+    bad = subprocess.run([sys.executable, "-m", "leadline.adapters.cli", "score", "/nonexistent.csv"],
+                         capture_output=True, text=True, timeout=60)
+    assert bad.returncode == 2 and "Traceback" not in bad.stderr and "cannot open" in bad.stderr
