@@ -5,7 +5,7 @@ from __future__ import annotations
 import csv
 import math
 import sys
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 from typing import TextIO
 
 import numpy as np
@@ -14,6 +14,7 @@ from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import DataError, SpecError
 from leadline.detector.fitting import fit
 from leadline.detector.grid import to_grid
+from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
 from .series_csv import read_series_csv
@@ -40,6 +41,28 @@ def build_spec(order: str, seasonal: str | None, trend: str | None) -> ModelSpec
     return ModelSpec.parse(order, seasonal, trend)
 
 
+def build_calendar(args) -> CalendarTerms | None:
+    """``--seasonality 1d:3,7d --weekend --holidays 2026-12-25,...`` -> calendar terms."""
+    periods = tuple(SeasonalPeriod.parse(p) for p in args.seasonality.split(",")) if args.seasonality else ()
+    holidays = ()
+    if args.holidays:
+        try:
+            holidays = tuple(date.fromisoformat(d.strip()) for d in args.holidays.split(","))
+        except ValueError as exc:
+            raise SpecError(f"--holidays {args.holidays!r}: expected ISO dates such as 2026-12-25, comma-separated") \
+                from exc
+    if not periods and not args.weekend and not holidays:
+        return None
+    return CalendarTerms(periods, args.weekend, holidays, signed_duration_s(args.utc_offset or "0"))
+
+
+def signed_duration_s(text: str) -> float:
+    """``"+1h"``, ``"-5h"`` or ``"0"`` as seconds."""
+    body = text.strip().lstrip("+-")
+    sign = -1.0 if text.strip().startswith("-") else 1.0
+    return 0.0 if body in ("", "0") else sign * parse_duration_s(body)
+
+
 def _iso(epoch_s: float) -> str:
     return datetime.fromtimestamp(epoch_s, tz=timezone.utc).isoformat().replace("+00:00", "Z")
 
@@ -55,12 +78,17 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
     if n_train >= grid.values.size:
         raise DataError(f"--train {args.train} covers all {grid.values.size} slots; nothing is left to score")
     spec = build_spec(args.order, args.seasonal, args.trend)
-    model = fit(grid.values[:n_train], spec)
+    calendar = build_calendar(args)
+    epoch = grid.epoch_s
+    model = fit(grid.values[:n_train], spec, calendar=calendar,
+                timestamps_epoch_s=epoch[:n_train] if calendar is not None else None)
     print(f"leadline score: fitted {model.spec.label} on {n_train} slots "
           f"(interval {grid.interval_s:g} s); AICc {model.aicc:.2f}, Ljung-Box p {model.ljung_box_pvalue:.3g}",
           file=err)
     if model.selection is not None:
         print(f"  chosen because: {model.selection.reason}", file=err)
+    if model.calendar is not None:
+        print(f"  calendar terms: {', '.join(model.calendar.names)}", file=err)
     for problem in model.problems:
         print(f"  fit problem: {problem}", file=err)
     counts = {k: v for k, v in grid.counts.as_dict().items() if v and k != "placed"}
@@ -69,7 +97,6 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
     stream = model.stream(level=args.level)
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(COLUMNS)
-    epoch = grid.epoch_s
     for t in range(n_train, grid.values.size):
         inn = stream.update(grid.values[t])
         writer.writerow([_iso(epoch[t]), _fmt(inn.value), _fmt(inn.forecast), _fmt(inn.error), _fmt(inn.variance),
@@ -90,6 +117,11 @@ def add_parser(subparsers) -> None:
     p.add_argument("--seasonal", help="P,D,Q,s for a seasonal ARIMA with a short period (s <= 24)")
     p.add_argument("--trend", choices=["n", "c", "t", "ct"], help="trend (default: constant unless differenced)")
     p.add_argument("--interval", help="nominal interval such as 15min (default: median spacing)")
+    p.add_argument("--seasonality", help="calendar cycles as Fourier terms, e.g. 1d:3,7d:2 (K after ':'; "
+                                         "without it K is chosen by AICc)")
+    p.add_argument("--weekend", action="store_true", help="add a weekend regressor")
+    p.add_argument("--holidays", help="comma-separated ISO dates to flag as holidays")
+    p.add_argument("--utc-offset", help="local time minus UTC for the calendar terms, e.g. 1h or -5h")
     p.add_argument("--level", type=float, default=0.95, help="forecast interval coverage (default 0.95)")
     p.add_argument("--out", help="write the scores here instead of standard output")
     p.set_defaults(handler=_handle)

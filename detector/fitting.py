@@ -85,6 +85,10 @@ class FittedModel:
         The order search (an ``OrderSelection``) when spec was "auto".
     calendar : Any
         The calendar terms used as regressors, or None.
+    origin_epoch_s, interval_s : float or None
+        The grid of the fitted window, with calendar terms.
+    harmonics_table : tuple of dict
+        The AICc of each number of harmonics tried, when K was chosen.
     """
 
     spec: ModelSpec
@@ -109,6 +113,7 @@ class FittedModel:
     calendar: Any = None
     origin_epoch_s: float | None = None
     interval_s: float | None = None
+    harmonics_table: tuple = ()
 
     @property
     def is_poor(self) -> bool:
@@ -153,6 +158,10 @@ class FittedModel:
             out["selection"] = self.selection.to_dict()
         if self.calendar is not None:
             out["calendar"] = self.calendar.to_dict()
+            out["calendar_terms"] = dict(zip(self.calendar.names,
+                                             (self.params[f"x{i + 1}"] for i in range(len(self.calendar.names)))))
+        if self.harmonics_table:
+            out["harmonics_table"] = list(self.harmonics_table)
         return out
 
 
@@ -219,7 +228,8 @@ def fit_sarimax(values: np.ndarray, spec: ModelSpec, exog: np.ndarray | None = N
     return results, captured
 
 
-def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_epoch_s: Any = None) -> FittedModel:
+def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_epoch_s: Any = None,
+        seasonal_period: int | None = None) -> FittedModel:
     """Fit ``spec`` (or choose one with ``"auto"``) to ``values``.
 
     Parameters
@@ -231,7 +241,12 @@ def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_
     calendar : CalendarTerms, optional
         Calendar regressors (seasonality by Fourier terms, day flags).
     timestamps_epoch_s : array_like, optional
-        Epoch seconds of the slots; required with ``calendar``.
+        Epoch seconds of the slots; required with ``calendar``. When a
+        period's number of harmonics is not given, it is chosen by AICc
+        and the table is kept in ``harmonics_table``.
+    seasonal_period : int, optional
+        With "auto": a short period s (<= 24 slots) for which seasonal
+        differencing is also tried.
 
     Returns
     -------
@@ -248,7 +263,17 @@ def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_
             raise FitError(f"spec must be a ModelSpec or 'auto', got {spec!r}")
         from .order_selection import select_order
 
-        return select_order(y, calendar=calendar, timestamps_epoch_s=timestamps_epoch_s)
+        return select_order(y, calendar=calendar, timestamps_epoch_s=timestamps_epoch_s,
+                            seasonal_period=seasonal_period)
+    if calendar is not None and not calendar.is_resolved:
+        from dataclasses import replace
+
+        from .seasonality import choose_harmonics
+
+        epoch = np.asarray(timestamps_epoch_s, dtype=float)
+        calendar, table = choose_harmonics(y, epoch, spec, calendar)
+        fitted = fit_spec(y, spec, calendar=calendar, timestamps_epoch_s=epoch)
+        return replace(fitted, harmonics_table=tuple(table))
     return fit_spec(y, spec, calendar=calendar, timestamps_epoch_s=timestamps_epoch_s)
 
 

@@ -46,9 +46,15 @@ class Candidate:
     aicc: float
     status: str  # "ok", "not converged", "near unit root", "failed: ..."
     fitted: Any = field(default=None, repr=False)
+    calendar_label: str = ""
+
+    @property
+    def label(self) -> str:
+        return self.spec.label + (" " + self.calendar_label if self.calendar_label else "")
 
     def to_dict(self) -> dict[str, Any]:
-        return {"model": self.spec.label, "spec": self.spec.to_dict(), "aicc": self.aicc, "status": self.status}
+        return {"model": self.label, "spec": self.spec.to_dict(), "aicc": self.aicc, "status": self.status,
+                "calendar": bool(self.calendar_label)}
 
 
 @dataclass
@@ -61,12 +67,13 @@ class OrderSelection:
     chosen: ModelSpec
     reason: str
     extra: dict[str, Any] = field(default_factory=dict)
+    chosen_label: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         return {
             "d": self.d,
             "kpss": self.kpss,
-            "chosen": self.chosen.label,
+            "chosen": self.chosen_label or self.chosen.label,
             "reason": self.reason,
             "candidates": [c.to_dict() for c in sorted(self.candidates, key=_sort_key)],
             **self.extra,
@@ -75,10 +82,10 @@ class OrderSelection:
     def table(self) -> str:
         """The AICc table as aligned text, best first."""
         rows = sorted(self.candidates, key=_sort_key)
-        width = max(len(c.spec.label) for c in rows)
+        width = max(len(c.label) for c in rows)
         lines = [f"{'model':<{width}}  {'AICc':>12}  status"]
         for c in rows:
-            lines.append(f"{c.spec.label:<{width}}  {c.aicc:>12.3f}  {c.status}")
+            lines.append(f"{c.label:<{width}}  {c.aicc:>12.3f}  {c.status}")
         return "\n".join(lines)
 
 
@@ -218,18 +225,37 @@ def stepwise_search(
 def explain(candidates: list[Candidate], chosen: Candidate, preface: str) -> str:
     ok = sorted((c for c in candidates if c.status == "ok"), key=_sort_key)
     runner = next((c for c in ok if c is not chosen), None)
-    text = f"{preface}; {chosen.spec.label} has the lowest AICc ({chosen.aicc:.2f}) of {len(candidates)} candidates"
+    text = f"{preface}; {chosen.label} has the lowest AICc ({chosen.aicc:.2f}) of {len(candidates)} candidates"
     if runner is not None:
-        text += f", {runner.aicc - chosen.aicc:.2f} below the next best, {runner.spec.label}"
+        text += f", {runner.aicc - chosen.aicc:.2f} below the next best, {runner.label}"
     excluded = [c for c in candidates if c.status != "ok"]
     if excluded:
         text += f"; {len(excluded)} excluded (not converged, near a unit root or failed)"
     return text
 
 
+def _calendar_residual(y: np.ndarray, design: np.ndarray) -> np.ndarray:
+    """y less its least-squares fit on the calendar terms (and a constant), for KPSS."""
+    ok = np.isfinite(y)
+    X = np.column_stack([np.ones(ok.sum()), design[ok]])
+    beta, *_ = np.linalg.lstsq(X, y[ok], rcond=None)
+    out = np.full_like(y, np.nan)
+    out[ok] = y[ok] - X @ beta
+    return out
+
+
 def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any = None,
-                 max_p: int = 4, max_q: int = 4, max_fits: int = 24):
+                 seasonal_period: int | None = None, max_p: int = 4, max_q: int = 4, max_fits: int = 24):
     """Choose d by KPSS and (p, q, constant) by stepwise AICc; return the winning fit.
+
+    With ``calendar`` the search also chooses between no seasonality and
+    calendar terms (their harmonics chosen by AICc first, on an
+    ARMA(1,1)); with a short ``seasonal_period`` s (<= 24) it also tries
+    seasonal differencing, SARIMA(p,d,q)(0,1,1)_s. Every candidate goes in
+    one AICc table on the same data. Caution: models with different
+    differencing have likelihoods of differently transformed data, so AICc
+    across them is a guide, as in Hyndman & Khandakar (2008), who choose D
+    by a test instead; the table shows the margin.
 
     Returns
     -------
@@ -237,8 +263,28 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
         With ``selection`` set to an :class:`OrderSelection`.
     """
     d, tests = choose_d(y)
-    kwargs = {"calendar": calendar, "timestamps_epoch_s": timestamps_epoch_s}
-    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=max_fits, fit_kwargs=kwargs)
+    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=max_fits)
+    extra: dict[str, Any] = {}
+    if calendar is not None:
+        from .seasonality import choose_harmonics
+
+        epoch = np.asarray(timestamps_epoch_s, dtype=float)
+        if not calendar.is_resolved:
+            base = ModelSpec((1, 0, 1), trend="c")
+            calendar, table = choose_harmonics(y, epoch, base, calendar)
+            extra["harmonics_table"] = table
+        d_cal, tests_cal = choose_d(_calendar_residual(y, calendar.design(epoch)))
+        extra["kpss_after_calendar"] = tests_cal
+        kwargs = {"calendar": calendar, "timestamps_epoch_s": epoch}
+        with_calendar = stepwise_search(y, d_cal, max_p=min(max_p, 3), max_q=min(max_q, 3), max_fits=12,
+                                        fit_kwargs=kwargs, tried={})
+        for key, cand in with_calendar.items():
+            cand.calendar_label = "+ calendar" + _calendar_text(calendar)
+            tried[("calendar",) + key] = cand
+    if seasonal_period is not None and 2 <= seasonal_period <= 24:
+        for order in ((0, max(d - 1, 0), 1), (1, max(d - 1, 0), 0), (1, max(d - 1, 0), 1)):
+            spec = ModelSpec(order, (0, 1, 1, seasonal_period), "n")
+            _evaluate(y, spec, tried, {})
     candidates = list(tried.values())
     ok = [c for c in candidates if c.status == "ok"]
     if not ok:
@@ -247,8 +293,18 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
     chosen = min(ok, key=lambda c: c.aicc)
     kpss_text = ", ".join(f"d={t['d']}: p={t['pvalue']:.3f}" for t in tests) or "series too short to test"
     reason = explain(candidates, chosen, f"d = {d} from KPSS at 5% ({kpss_text})")
-    selection = OrderSelection(d, tests, candidates, chosen.spec, reason)
+    selection = OrderSelection(chosen.fitted.spec.order[1], tests, candidates, chosen.spec, reason, extra,
+                               chosen.label)
     return _with_selection(chosen.fitted, selection)
+
+
+def _calendar_text(calendar) -> str:
+    parts = [f"{p.label} K={p.harmonics}" for p in calendar.periods]
+    if calendar.weekend:
+        parts.append("weekend")
+    if calendar.holidays:
+        parts.append("holidays")
+    return " (" + ", ".join(parts) + ")"
 
 
 def _with_selection(fitted, selection):

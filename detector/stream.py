@@ -55,6 +55,9 @@ from .errors import StateFormatError
 from .innovation import Innovation
 from .statespace import LinearSystem
 
+#: Slots of d_t computed at a time for a stream with calendar terms.
+INTERCEPT_BLOCK = 1024
+
 #: Relative change of P_t below which the steady-state gain is used.
 STEADY_RTOL = 1e-12
 
@@ -66,11 +69,11 @@ STATE_FORMAT_VERSION = 1
 class Regression(Protocol):
     """The part of the mean that comes from the clock (calendar terms).
 
-    ``offset(step)`` is x_t' beta for the 0-based slot ``step`` of the
-    model's grid; it is added to d_t.
+    ``offsets(start, count)`` gives x_t' beta for the 0-based slots
+    start .. start + count - 1 of the model's grid; it is added to d_t.
     """
 
-    def offset(self, step: int) -> float: ...
+    def offsets(self, start: int, count: int) -> np.ndarray: ...
 
     def to_dict(self) -> dict[str, Any]: ...
 
@@ -163,7 +166,10 @@ class Stream:
         self._T = system.transition
         self._H = system.obs_cov
         self._RQR = system.state_cov
-        self._d0 = system.obs_intercept
+        self._d_const = system.obs_intercept + self._level_offset
+        self._d_start = 0
+        self._d_block: list[float] = []
+        self._d_len = 0
         self._step_fn = None
         self._steady = False
         self._a_tuple: tuple[float, ...] = ()
@@ -200,10 +206,16 @@ class Stream:
 
     # ------------------------------------------------------------ internals
     def _obs_intercept(self, t: int) -> float:
-        d = self._d0 + self._level_offset
-        if self.regression is not None:
-            d += self.regression.offset(t)
-        return d
+        """d_t: the constant, the level shifts and the calendar terms' x_t' beta."""
+        if self.regression is None:
+            return self._d_const
+        i = t - self._d_start
+        if 0 <= i < self._d_len:
+            return self._d_block[i]
+        self._d_start = t
+        self._d_block = (self._d_const + self.regression.offsets(t, INTERCEPT_BLOCK)).tolist()
+        self._d_len = len(self._d_block)
+        return self._d_block[0]
 
     def _enter_steady(self) -> None:
         if self._step_fn is None:
@@ -259,7 +271,11 @@ class Stream:
         t = self._t
         y = math.nan if value is None else float(value)
         missing = y != y
-        d = self._obs_intercept(t)
+        if self.regression is None:
+            d = self._d_const
+        else:
+            i = t - self._d_start
+            d = self._d_block[i] if 0 <= i < self._d_len else self._obs_intercept(t)
         if self._steady:
             if absorb and not missing:
                 f, v, self._a_tuple = self._step_fn(self._a_tuple, self._gain, y, d, t)
@@ -327,6 +343,8 @@ class Stream:
         if not math.isfinite(delta):
             raise ValueError(f"level shift must be finite, got {delta}")
         self._level_offset += float(delta)
+        self._d_const = self.system.obs_intercept + self._level_offset
+        self._d_len = 0  # recompute the calendar block with the new constant
 
     # ------------------------------------------------------------ save/load
     def to_bytes(self) -> bytes:

@@ -81,3 +81,17 @@ def test_bundled_example_runs_without_a_traceback():
     bad = subprocess.run([sys.executable, "-m", "leadline.adapters.cli", "score", "/nonexistent.csv"],
                          capture_output=True, text=True, timeout=60)
     assert bad.returncode == 2 and "Traceback" not in bad.stderr and "cannot open" in bad.stderr
+
+
+def test_score_accepts_calendar_terms(tmp_path):
+    epoch = 1_780_000_000 + 900 * np.arange(1200)
+    y = 20 + 4 * np.sin(2 * np.pi * epoch / 86400.0) + simulate_arima(1200, ar=[0.5], sigma=0.3, seed=12)
+    write_feed(tmp_path / "flow.csv", y)
+    out = tmp_path / "s.csv"
+    assert main(["score", str(tmp_path / "flow.csv"), "--train", "7d", "--order", "1,0,0",
+                 "--seasonality", "1d:2", "--weekend", "--out", str(out)]) == 0
+    with out.open() as handle:
+        z = np.array([float(r["z"]) for r in csv.DictReader(handle)])
+    assert z.size == 1200 - 7 * 96
+    # With the daily cycle in the model the held-out z are close to unit variance.
+    assert 0.8 < z.std() < 1.2
