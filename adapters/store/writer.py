@@ -1,0 +1,401 @@
+"""Batched writes: stage in memory, then commit everything in one transaction.
+
+:class:`WriteBuffer` holds what the service has staged since the last flush:
+events (merged per key), the latest checkpoint per feed, the latest offset
+per followed file, and reject counts with a bounded sample. :func:`write_buffer`
+writes a buffer inside a transaction the caller opened, so the events, the
+checkpoints and the CSV offsets that produced them commit together, or not
+at all.
+
+Notes
+-----
+Merging two copies of one episode (same ``(feed_id, rule, start)``), in the
+buffer and in the database upsert alike:
+
+- ``severity``: the higher of the two (``warning`` < ``alarm``);
+- ``end``: the newer copy's if set, else the older one's (a replayed onset
+  never reopens a closed episode);
+- ``peak_abs_z``: the larger, NaN counting as absent;
+- ``detail``: the newer copy's if it closes the episode, else the older one's;
+- onset fields (value, forecast, interval, parameters, model version): kept
+  from the first copy.
+
+So applying the same copies again, in any number and in any grouping into
+flushes, leaves the row as it was (``updated_at`` aside).
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass, field, replace
+from datetime import datetime, timezone
+from typing import Any, Callable
+
+from sqlalchemy import Connection, and_, case, delete, func, literal_column, or_, select
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.engine import Dialect
+
+from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.detector.events import SEVERITIES, AlarmEvent
+
+from . import schema
+from .coltypes import dumps_json
+
+#: Reject samples kept per (source, reason); older ones are deleted.
+REJECT_SAMPLE_LIMIT = 20
+
+_SEVERITY_RANK = {s: i for i, s in enumerate(SEVERITIES)}
+
+
+def merge_events(old: AlarmEvent, new: AlarmEvent) -> AlarmEvent:
+    """Two copies of one episode merged (see the module notes)."""
+    if old.key != new.key:
+        raise ValueError(f"cannot merge different episodes {old.key} and {new.key}")
+    severity = max(old.severity, new.severity, key=_SEVERITY_RANK.__getitem__)
+    peaks = [p for p in (old.peak_abs_z, new.peak_abs_z) if not math.isnan(p)]
+    return replace(
+        old,
+        severity=severity,
+        end=new.end if new.end is not None else old.end,
+        peak_abs_z=max(peaks) if peaks else float("nan"),
+        detail=new.detail if new.end is not None else old.detail,
+    )
+
+
+@dataclass
+class _RejectTally:
+    count: int
+    first_seen: datetime
+    last_seen: datetime
+    samples: deque = field(default_factory=lambda: deque(maxlen=REJECT_SAMPLE_LIMIT))
+
+
+class WriteBuffer:
+    """What was staged since the last successful flush. Not thread-safe."""
+
+    def __init__(self) -> None:
+        self.events: dict[tuple[str, str, datetime], AlarmEvent] = {}
+        #: ``parameters`` of each staged event as JSON text, encoded on staging
+        #: so that an event that cannot be stored is refused at once instead of
+        #: failing every later flush.
+        self.parameters_json: dict[tuple[str, str, datetime], str] = {}
+        self.checkpoints: dict[str, tuple[bytes, int]] = {}
+        self.offsets: dict[tuple[str, str], SourceOffset] = {}
+        self.rejects: dict[tuple[str, str], _RejectTally] = {}
+
+    def __len__(self) -> int:
+        return len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects)
+
+    def add_event(self, ev: AlarmEvent) -> None:
+        """Stage ``ev``, merged with a staged copy of the same episode.
+
+        Raises ``TypeError`` or ``ValueError`` (nothing staged) when its
+        parameters are not JSON-serialisable.
+        """
+        old = self.events.get(ev.key)
+        if old is None:
+            self.parameters_json[ev.key] = dumps_json(ev.parameters)
+            self.events[ev.key] = ev
+        else:
+            self.events[ev.key] = merge_events(old, ev)
+
+    def add_checkpoint(self, feed_id: str, state: bytes, model_version: int) -> None:
+        self.checkpoints[feed_id] = (bytes(state), int(model_version))
+
+    def add_offset(self, off: SourceOffset) -> None:
+        self.offsets[(off.source, off.path)] = off
+
+    def add_reject(self, sample: RejectSample) -> None:
+        key = (sample.source, sample.reason)
+        tally = self.rejects.get(key)
+        if tally is None:
+            tally = self.rejects[key] = _RejectTally(0, sample.seen_at, sample.seen_at)
+        tally.count += 1
+        tally.first_seen = min(tally.first_seen, sample.seen_at)
+        tally.last_seen = max(tally.last_seen, sample.seen_at)
+        tally.samples.append(sample)
+
+
+_INSERTS: dict[str, Callable[..., Any]] = {"sqlite": sqlite.insert, "postgresql": postgresql.insert}
+
+
+def insert_for(conn: Connection | Dialect) -> Callable[..., Any]:
+    """The dialect's ``insert`` (the one with ``on_conflict_do_update``)."""
+    dialect = conn.dialect if isinstance(conn, Connection) else conn
+    try:
+        return _INSERTS[dialect.name]
+    except KeyError:
+        raise ValueError(f"no upsert for dialect {dialect.name!r}") from None
+
+
+def event_row(ev: AlarmEvent, now: datetime) -> dict[str, Any]:
+    """The ``events`` columns of an event as Python values (no surrogate id).
+
+    This is the reference for :meth:`EventUpsert.rows`: passed through the
+    column types of :mod:`.schema` it must give the very same driver values
+    (a test checks this on both backends).
+    """
+    return {
+        "feed_id": ev.feed_id,
+        "rule": ev.rule,
+        "severity": ev.severity,
+        "start_at": ev.start,
+        "end_at": ev.end,
+        "peak_abs_z": ev.peak_abs_z,
+        "value_at_onset": ev.value_at_onset,
+        "forecast_at_onset": ev.forecast_at_onset,
+        "lower_at_onset": ev.lower_at_onset,
+        "upper_at_onset": ev.upper_at_onset,
+        "parameters": ev.parameters,
+        "model_version": ev.model_version,
+        "detail": ev.detail,
+        "caution": ev.caution,
+        "created_at": now,
+        "updated_at": now,
+        "start_hour": schema.start_hour_of(ev.start.timestamp()),
+    }
+
+
+def _event_upsert(insert: Callable[..., Any]) -> Any:
+    ev = schema.events
+    stmt = insert(ev)
+    new = stmt.excluded
+    # Constants are inlined (literal_column) so the only bound parameters
+    # are the row's columns; see EventUpsert.
+    alarm, warning = literal_column("'alarm'"), literal_column("'warning'")
+    return stmt.on_conflict_do_update(
+        index_elements=[ev.c.feed_id, ev.c.rule, ev.c.start_at],
+        set_={
+            "severity": case((or_(new.severity == alarm, ev.c.severity == alarm), alarm), else_=warning),
+            "end_at": func.coalesce(new.end_at, ev.c.end_at),
+            "peak_abs_z": case(
+                (new.peak_abs_z.is_(None), ev.c.peak_abs_z),
+                (ev.c.peak_abs_z.is_(None), new.peak_abs_z),
+                (new.peak_abs_z > ev.c.peak_abs_z, new.peak_abs_z),
+                else_=ev.c.peak_abs_z,
+            ),
+            "detail": case((new.end_at.is_not(None), new.detail), else_=ev.c.detail),
+            "updated_at": new.updated_at,
+        },
+    )
+
+
+#: The event columns in the order :meth:`EventUpsert.rows` builds them.
+_EVENT_COLUMNS = (
+    "feed_id", "rule", "severity", "start_at", "end_at", "peak_abs_z", "value_at_onset",
+    "forecast_at_onset", "lower_at_onset", "upper_at_onset", "parameters", "model_version",
+    "detail", "caution", "created_at", "updated_at", "start_hour",
+)  # fmt: skip
+if set(_EVENT_COLUMNS) != {c.name for c in schema.events.columns} - {"id"}:
+    raise RuntimeError("writer._EVENT_COLUMNS is out of step with schema.events")
+
+
+def _nan_to_none(x: float) -> float | None:
+    x = float(x)
+    return None if x != x else x
+
+
+def _sqlite_time(t: datetime | None) -> str | None:
+    # The text SQLAlchemy's SQLite DATETIME writes: "YYYY-MM-DD HH:MM:SS.ffffff" (UTC).
+    if t is None:
+        return None
+    return t.astimezone(timezone.utc).replace(tzinfo=None).isoformat(" ", "microseconds")
+
+
+def _pg_time(t: datetime | None) -> datetime | None:
+    return None if t is None else t.astimezone(timezone.utc)
+
+
+class EventUpsert:
+    """The event upsert, compiled once per dialect, executed straight on the driver.
+
+    The statement is the dialect's ``INSERT ... ON CONFLICT (feed_id, rule,
+    start_at) DO UPDATE`` built with SQLAlchemy Core (:func:`_event_upsert`);
+    only the per-row bind conversion is done here, in one tight loop instead
+    of one SQLAlchemy type processor per value. That triples the batched
+    write rate on SQLite. The conversions are those of :mod:`.coltypes`
+    (UTC, NaN as NULL, JSON text), and a test holds them equal to the typed
+    path.
+    """
+
+    def __init__(self, dialect: Dialect) -> None:
+        compiled = _event_upsert(insert_for(dialect)).compile(
+            dialect=dialect, column_keys=list(_EVENT_COLUMNS), for_executemany=True  # no RETURNING
+        )
+        self.sql = str(compiled)
+        self._time = _sqlite_time if dialect.name == "sqlite" else _pg_time
+        self.positional = bool(compiled.positional)
+        names = tuple(compiled.positiontup or ()) if self.positional else tuple(compiled.binds)
+        if sorted(names) != sorted(_EVENT_COLUMNS):
+            raise RuntimeError(f"event upsert binds {names}, expected the columns {_EVENT_COLUMNS}")
+        self.names = names
+
+    def rows(self, evs: Any, now: datetime, parameters_json: dict[Any, str] | None = None) -> list[Any]:
+        """Driver-ready parameters: tuples (positional) or dicts (named).
+
+        ``parameters_json`` maps event keys to their already encoded
+        parameters (see :class:`WriteBuffer`); missing ones are encoded here.
+        """
+        pj = parameters_json or {}
+        t = self._time
+        now_db = t(now)
+        nan = _nan_to_none
+        hour = schema.start_hour_of
+        # In _EVENT_COLUMNS order.
+        base = [
+            (
+                ev.feed_id,
+                ev.rule,
+                ev.severity,
+                t(ev.start),
+                t(ev.end),
+                nan(ev.peak_abs_z),
+                nan(ev.value_at_onset),
+                nan(ev.forecast_at_onset),
+                nan(ev.lower_at_onset),
+                nan(ev.upper_at_onset),
+                pj[ev.key] if ev.key in pj else dumps_json(ev.parameters),
+                None if ev.model_version is None else int(ev.model_version),
+                ev.detail,
+                ev.caution,
+                now_db,
+                now_db,
+                hour(ev.start.timestamp()),
+            )
+            for ev in evs
+        ]
+        if not self.positional:
+            return [dict(zip(_EVENT_COLUMNS, row)) for row in base]
+        if self.names == _EVENT_COLUMNS:
+            return base
+        order = [_EVENT_COLUMNS.index(n) for n in self.names]
+        return [tuple(row[i] for i in order) for row in base]
+
+
+_UPSERTS: dict[str, EventUpsert] = {}
+
+
+def event_upsert_for(dialect: Dialect) -> EventUpsert:
+    up = _UPSERTS.get(dialect.name)
+    if up is None:
+        up = _UPSERTS[dialect.name] = EventUpsert(dialect)
+    return up
+
+
+def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
+    """Write everything in ``buf`` within the caller's open transaction.
+
+    Parameters
+    ----------
+    conn : sqlalchemy.Connection
+        In a write transaction; the caller commits.
+    buf : WriteBuffer
+        Left unchanged: the caller clears it only after the commit returned.
+    now : datetime
+        UTC; ``created_at`` / ``updated_at`` of the rows.
+
+    Returns
+    -------
+    int
+        The number of event rows upserted.
+    """
+    insert = insert_for(conn)
+    feed_ids = {k[0] for k in buf.events} | set(buf.checkpoints)
+    if feed_ids:
+        stmt = insert(schema.feeds).on_conflict_do_nothing(index_elements=[schema.feeds.c.feed_id])
+        conn.execute(stmt, [{"feed_id": f, "created_at": now} for f in sorted(feed_ids)])
+
+    if buf.events:
+        up = event_upsert_for(conn.dialect)
+        conn.exec_driver_sql(up.sql, up.rows(buf.events.values(), now, buf.parameters_json))
+
+    if buf.checkpoints:
+        cp = schema.checkpoints
+        stmt = insert(cp)
+        stmt = stmt.on_conflict_do_update(
+            index_elements=[cp.c.feed_id],
+            set_={
+                "state": stmt.excluded.state,
+                "model_version": stmt.excluded.model_version,
+                "updated_at": stmt.excluded.updated_at,
+            },
+        )
+        conn.execute(
+            stmt,
+            [
+                {"feed_id": f, "state": state, "model_version": version, "updated_at": now}
+                for f, (state, version) in buf.checkpoints.items()
+            ],
+        )
+
+    if buf.offsets:
+        so = schema.source_offsets
+        stmt = insert(so)
+        stmt = stmt.on_conflict_do_update(
+            index_elements=[so.c.source, so.c.path],
+            set_={c: getattr(stmt.excluded, c) for c in ("device", "inode", "offset_bytes", "updated_at")},
+        )
+        conn.execute(
+            stmt,
+            [
+                {
+                    "source": o.source,
+                    "path": o.path,
+                    "device": o.device,
+                    "inode": o.inode,
+                    "offset_bytes": o.offset_bytes,
+                    "updated_at": o.updated_at,
+                }
+                for o in buf.offsets.values()
+            ],
+        )
+
+    if buf.rejects:
+        _write_rejects(conn, insert, buf)
+    return len(buf.events)
+
+
+def _write_rejects(conn: Connection, insert: Callable[..., Any], buf: WriteBuffer) -> None:
+    rc = schema.reject_counts
+    stmt = insert(rc)
+    new = stmt.excluded
+    stmt = stmt.on_conflict_do_update(
+        index_elements=[rc.c.source, rc.c.reason],
+        set_={
+            "count": rc.c.count + new.count,
+            "first_seen": case((new.first_seen < rc.c.first_seen, new.first_seen), else_=rc.c.first_seen),
+            "last_seen": case((new.last_seen > rc.c.last_seen, new.last_seen), else_=rc.c.last_seen),
+        },
+    )
+    conn.execute(
+        stmt,
+        [
+            {"source": s, "reason": r, "count": t.count, "first_seen": t.first_seen, "last_seen": t.last_seen}
+            for (s, r), t in buf.rejects.items()
+        ],
+    )
+    rs = schema.reject_samples
+    rows = [
+        {
+            "source": x.source,
+            "reason": x.reason,
+            "location": x.where,
+            "detail": x.detail,
+            "raw": bytes(x.raw),
+            "seen_at": x.seen_at,
+        }
+        for t in buf.rejects.values()
+        for x in t.samples
+    ]
+    conn.execute(rs.insert(), rows)
+    for source, reason in buf.rejects:
+        keep = (
+            select(rs.c.id)
+            .where(rs.c.source == source, rs.c.reason == reason)
+            .order_by(rs.c.id.desc())
+            .limit(REJECT_SAMPLE_LIMIT)
+        )
+        conn.execute(
+            delete(rs).where(and_(rs.c.source == source, rs.c.reason == reason, rs.c.id.not_in(keep)))
+        )
