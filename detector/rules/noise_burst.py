@@ -1,0 +1,246 @@
+"""Noise burst rule: the innovations' spread rises for a while (a loose connection).
+
+Notes
+-----
+The rule measures the spread of the last w standardized innovations by
+their mean square successive difference (von Neumann 1941) [from memory]:
+
+.. math::
+
+    Q_t = \\tfrac12 \\sum_{j=t-w+2}^{t} (z_j - z_{j-1})^2
+
+Successive differences make Q_t blind to the mean of z: a level shift inside
+the window adds a single term, so a step (the CUSUM's business) is not
+taken for a burst, while a burst raises every term. Under the model the z
+are independent N(0, 1) and Q_t = z' A z with A = D'D / 2 for the
+(w - 1) x w difference matrix D, so Q_t is distributed as a weighted sum of
+independent chi-square(1) variables with the eigenvalues of A,
+
+.. math::
+
+    \\lambda_i = 1 - \\cos(\\pi i / w), \\qquad i = 1, \\dots, w - 1
+
+(the eigenvalues of the path graph's Laplacian, halved). Its upper tail is
+computed by the Lugannani-Rice saddlepoint approximation (Lugannani & Rice
+1980; for quadratic forms Kuonen 1999, Biometrika 86) with the cumulant
+generating function K(s) = -1/2 sum log(1 - 2 lambda_i s):
+
+.. math::
+
+    K'(\\hat s) = q, \\quad
+    w = \\operatorname{sign}(\\hat s)\\sqrt{2(\\hat s q - K(\\hat s))}, \\quad
+    u = \\hat s \\sqrt{K''(\\hat s)},
+
+    P(Q > q) \\approx 1 - \\Phi(w) + \\varphi(w)\\,(1/u - 1/w).
+
+The rule raises when Q_t exceeds the upper ``tail_probability`` quantile and
+clears when it falls below the upper ``clear_probability`` quantile (the
+deadband). Readings at or beyond ``screen_abs_z`` (the spike alarm limit)
+are left out, since the spike rule already reports them; the differences
+are then taken between consecutive valid values, and with n valid values
+the limits are those for n (the same law with w replaced by n).
+
+Heavy tails. With ``clip_abs_z`` = c each z is winsorized at +-c before it
+enters the window. Winsorizing is a contraction, so Q can only shrink and
+the limit stays conservative for normal innovations, while a single
+heavy-tailed value adds at most about 2 c^2. For feeds whose innovations
+have heavier tails than normal, :mod:`.thresholds` measures Q's upper
+quantile on windows resampled from the training residuals and stores its
+ratio to the normal-theory quantile as ``limit_scale`` (>= 1), which
+multiplies every limit.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+from scipy.optimize import brentq
+from scipy.stats import norm
+
+from ..errors import RuleError
+from ..innovation import Innovation
+from .lifecycle import Assessment
+
+
+def successive_difference_weights(n: int) -> np.ndarray:
+    """The eigenvalues 1 - cos(pi i / n), i = 1..n-1, of the statistic's quadratic form."""
+    return 1.0 - np.cos(np.pi * np.arange(1, n) / n)
+
+
+def quadratic_form_sf(q: float, weights: np.ndarray) -> float:
+    """P(sum w_i X_i^2 > q), X_i iid N(0, 1), by the Lugannani-Rice saddlepoint formula."""
+    lam = np.asarray(weights, dtype=float)
+    mean = float(lam.sum())
+    if q <= 0:
+        return 1.0
+
+    def k1(s: float) -> float:
+        return float(np.sum(lam / (1.0 - 2.0 * lam * s)))
+
+    top = 1.0 / (2.0 * lam.max())
+    if abs(q - mean) < 1e-9 * mean:
+        q = mean * (1 + 1e-6)
+    if q > mean:
+        low, high = 0.0, top * (1 - 1e-15)
+        while k1(high) < q:  # cannot happen for finite q, kept as a guard
+            high = top - (top - high) / 10
+    else:
+        low, high = -1.0, 0.0
+        while k1(low) > q:
+            low *= 2.0
+    s = brentq(lambda x: k1(x) - q, low, high, xtol=1e-15, rtol=1e-14, maxiter=500)
+    one = 1.0 - 2.0 * lam * s
+    K = -0.5 * float(np.sum(np.log(one)))
+    K2 = float(np.sum(2.0 * lam * lam / (one * one)))
+    w = math.copysign(math.sqrt(max(2.0 * (s * q - K), 0.0)), s)
+    u = s * math.sqrt(K2)
+    if abs(w) < 1e-8 or abs(u) < 1e-8:
+        return 0.5
+    return float(norm.sf(w) + norm.pdf(w) * (1.0 / u - 1.0 / w))
+
+
+#: Largest tail or clear probability the limits are computed for.
+MAX_PROBABILITY = 0.2
+
+
+@lru_cache(maxsize=512)
+def burst_limit(n: int, tail_probability: float, limit_scale: float = 1.0) -> float:
+    """The upper ``tail_probability`` quantile of Q for n valid values, times ``limit_scale``."""
+    if n < 2:
+        return math.inf
+    if not 0 < tail_probability <= MAX_PROBABILITY:
+        raise RuleError(f"noise_burst probabilities must be in (0, {MAX_PROBABILITY}], got {tail_probability!r}")
+    lam = successive_difference_weights(n)
+    mean = float(lam.sum())
+    sd = math.sqrt(2.0 * float(np.sum(lam * lam)))
+    target = math.log(tail_probability)
+
+    def f(q: float) -> float:
+        return math.log(max(quadratic_form_sf(q, lam), 1e-300)) - target
+
+    # P(Q > mean + sd/2) is about 0.3 for every n >= 3, above MAX_PROBABILITY
+    low, high = mean + 0.5 * sd, mean + 10.0 * sd
+    while f(high) > 0:
+        high += 10.0 * sd
+    return limit_scale * float(brentq(f, low, high, xtol=1e-9))
+
+
+def successive_difference_statistic(values) -> float:
+    """Q = 1/2 sum of squared successive differences (the Notes)."""
+    return 0.5 * math.fsum((b - a) ** 2 for a, b in zip(values, values[1:]))
+
+
+class NoiseBurstRule:
+    """The spread of z over ``window`` steps, by successive differences, against its tail quantile.
+
+    Parameters
+    ----------
+    window : int
+        w, the number of steps (>= 3).
+    tail_probability : float
+        Raise when Q_t is above its upper quantile at this probability, in (0, 0.2].
+    clear_probability : float
+        Clear when Q_t is below its upper quantile at this probability
+        (>= tail_probability, <= 0.2).
+    screen_abs_z : float or None
+        Leave out readings with |z| at or above this.
+    clip_abs_z : float or None
+        Winsorize z at +-this before it enters the window.
+    limit_scale : float
+        Multiplies the limits (>= 1; see Notes).
+    min_valid : int or None
+        Assess only when the window holds at least this many valid values
+        (default w // 2).
+    """
+
+    name = "noise_burst"
+
+    def __init__(self, window: int = 24, tail_probability: float = 1e-4, clear_probability: float = 0.05,
+                 screen_abs_z: float | None = None, clip_abs_z: float | None = None, limit_scale: float = 1.0,
+                 min_valid: int | None = None) -> None:
+        if isinstance(window, bool) or not isinstance(window, int) or window < 3:
+            raise RuleError(f"noise_burst window must be an integer >= 3, got {window!r}")
+        if not 0 < tail_probability <= MAX_PROBABILITY:
+            raise RuleError(f"noise_burst tail_probability must be in (0, {MAX_PROBABILITY}], "
+                            f"got {tail_probability!r}")
+        if not tail_probability <= clear_probability <= MAX_PROBABILITY:
+            raise RuleError(f"noise_burst clear_probability must be in [tail_probability, {MAX_PROBABILITY}], "
+                            f"got {clear_probability!r}")
+        if not (math.isfinite(limit_scale) and limit_scale >= 1):
+            raise RuleError(f"noise_burst limit_scale must be a finite number >= 1, got {limit_scale!r}")
+        if clip_abs_z is not None and not clip_abs_z > 0:
+            raise RuleError(f"noise_burst clip_abs_z must be > 0 or None, got {clip_abs_z!r}")
+        if screen_abs_z is not None and not screen_abs_z > 0:
+            raise RuleError(f"noise_burst screen_abs_z must be > 0 or None, got {screen_abs_z!r}")
+        self.window = window
+        self.tail_probability = float(tail_probability)
+        self.clear_probability = float(clear_probability)
+        self.screen_abs_z = None if screen_abs_z is None else float(screen_abs_z)
+        self.clip_abs_z = None if clip_abs_z is None else float(clip_abs_z)
+        self.limit_scale = float(limit_scale)
+        self.min_valid = max(3, window // 2) if min_valid is None else int(min_valid)
+        if not 3 <= self.min_valid <= window:
+            raise RuleError(f"noise_burst min_valid must be in [3, window={window}], got {min_valid!r}")
+        # limits for n = 0..w valid values, computed once (and cached across rules)
+        self._raise = [math.inf] * self.min_valid + [burst_limit(n, self.tail_probability, self.limit_scale)
+                                                     for n in range(self.min_valid, window + 1)]
+        self._clear = [math.inf] * self.min_valid + [burst_limit(n, self.clear_probability, self.limit_scale)
+                                                     for n in range(self.min_valid, window + 1)]
+        self.reset()
+
+    def parameters(self) -> dict[str, Any]:
+        return {"window": self.window, "tail_probability": self.tail_probability,
+                "clear_probability": self.clear_probability, "screen_abs_z": self.screen_abs_z,
+                "clip_abs_z": self.clip_abs_z, "limit_scale": self.limit_scale, "min_valid": self.min_valid}
+
+    @property
+    def statistic(self) -> float:
+        """Q_t over the valid values in the window."""
+        return self._q
+
+    @property
+    def valid(self) -> int:
+        return self._valid
+
+    def limit(self) -> float:
+        """The raise level for the window's current number of valid values."""
+        return self._raise[self._valid]
+
+    def reset(self) -> None:
+        self._values: deque[float | None] = deque()
+        self._q = 0.0
+        self._valid = 0
+
+    def _push(self, z: float | None) -> None:
+        self._values.append(z)
+        if len(self._values) > self.window:
+            self._values.popleft()
+        valid = [v for v in self._values if v is not None]
+        self._valid = len(valid)
+        self._q = successive_difference_statistic(valid)
+
+    def assess(self, innovation: Innovation) -> Assessment | None:
+        z = innovation.z
+        if not math.isfinite(z):
+            return None
+        a = abs(z)
+        screened = self.screen_abs_z is not None and a >= self.screen_abs_z
+        c = self.clip_abs_z
+        if c is not None:
+            z = c if z > c else (-c if z < -c else z)
+        self._push(None if screened else z)
+        n = self._valid
+        if n < self.min_valid:
+            return Assessment(None, False, a)
+        q = self._q
+        if q > self._raise[n]:
+            ratio = math.sqrt(q / (n - 1))
+            detail = (f"innovation spread about {ratio:.2f} times the model's over the last {len(self._values)} "
+                      f"readings (successive-difference statistic {q:.1f} > {self._raise[n]:.1f} "
+                      f"at tail probability {self.tail_probability:.2g})")
+            return Assessment("alarm", False, a, detail)
+        return Assessment(None, q < self._clear[n], a)
