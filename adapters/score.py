@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import csv
+import json
 import math
 import sys
+from dataclasses import asdict
 from datetime import date, datetime, timezone
 from typing import TextIO
 
@@ -12,14 +14,18 @@ import numpy as np
 
 from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import DataError, SpecError
+from leadline.detector.events import CAUTION, AlarmEvent
 from leadline.detector.fitting import fit
 from leadline.detector.grid import to_grid
+from leadline.detector.rules.monitor import FeedMonitor, MonitorConfig
+from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
 from .series_csv import read_series_csv
 
 COLUMNS = ("timestamp", "value", "forecast", "error", "variance", "z", "lower", "upper")
+WEEK_S = 7 * 86400.0
 
 
 def train_slots(train: str, interval_s: float) -> int:
@@ -94,14 +100,52 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
     counts = {k: v for k, v in grid.counts.as_dict().items() if v and k != "placed"}
     if counts:
         print(f"  grid: {counts}", file=err)
-    stream = model.stream(level=args.level)
+    stream = model.stream(level=args.level, model_version=1)
+    monitor = build_monitor(args, model, grid.values[:n_train], grid.interval_s, stream)
+    rules = list(monitor.lifecycles)
     writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(COLUMNS)
+    writer.writerow(COLUMNS + tuple(f"state_{rule}" for rule in rules))
+    events: dict[tuple, AlarmEvent] = {}
     for t in range(n_train, grid.values.size):
-        inn = stream.update(grid.values[t])
-        writer.writerow([_iso(epoch[t]), _fmt(inn.value), _fmt(inn.forecast), _fmt(inn.error), _fmt(inn.variance),
-                         _fmt(inn.z), _fmt(inn.lower), _fmt(inn.upper)])
+        when = datetime.fromtimestamp(epoch[t], tz=timezone.utc)
+        for event in monitor.process(grid.values[t], when):
+            events[event.key] = event  # the clearing copy replaces the onset copy
+        inn = monitor.last_innovation
+        writer.writerow([_iso(epoch[t]), _fmt(grid.values[t]), _fmt(inn.forecast), _fmt(inn.error),
+                         _fmt(inn.variance), _fmt(inn.z), _fmt(inn.lower), _fmt(inn.upper)]
+                        + [monitor.lifecycles[rule].state for rule in rules])
+    print(f"  {len(events)} alarm events ({args.threshold_mode} limits); {CAUTION}", file=err)
+    if args.events_out:
+        write_events(args.events_out, list(events.values()))
     return 0
+
+
+def build_monitor(args, model, train_values: np.ndarray, interval_s: float, stream) -> FeedMonitor:
+    """The alarm rules, with limits in ``sigma`` mode or from a false-alarm budget."""
+    if args.threshold_mode == "budget":
+        thresholds = budget_thresholds(model.standardized_residuals, interval_s=interval_s,
+                                       false_alarms=args.false_alarms_per_week, per_s=WEEK_S,
+                                       values=train_values[np.isfinite(train_values)])
+    else:
+        thresholds = sigma_thresholds()
+    config = MonitorConfig(thresholds=thresholds, range_low=args.range_low, range_high=args.range_high)
+    return FeedMonitor(args.feed, stream, config)
+
+
+def write_events(path: str, events: list[AlarmEvent]) -> None:
+    """The events as a JSON document, each with its caution note."""
+    rows = []
+    for ev in sorted(events, key=lambda e: (e.start, e.rule)):
+        row = asdict(ev)
+        row["start"] = ev.start.isoformat()
+        row["end"] = ev.end.isoformat() if ev.end else None
+        rows.append({k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in row.items()})
+    try:
+        with open(path, "w", encoding="utf-8") as handle:
+            json.dump({"caution": CAUTION, "events": rows}, handle, indent=2)
+            handle.write("\n")
+    except OSError as exc:
+        raise DataError(f"--events-out {path}: cannot write: {exc.strerror}") from exc
 
 
 def add_parser(subparsers) -> None:
@@ -124,6 +168,14 @@ def add_parser(subparsers) -> None:
     p.add_argument("--utc-offset", help="local time minus UTC for the calendar terms, e.g. 1h or -5h")
     p.add_argument("--level", type=float, default=0.95, help="forecast interval coverage (default 0.95)")
     p.add_argument("--out", help="write the scores here instead of standard output")
+    p.add_argument("--events-out", help="write the alarm events here as JSON")
+    p.add_argument("--feed", default="feed", help="feed id used in the events (default 'feed')")
+    p.add_argument("--threshold-mode", choices=["sigma", "budget"], default="budget",
+                   help="fixed sigma limits, or limits from a false-alarm budget (default)")
+    p.add_argument("--false-alarms-per-week", type=float, default=1.0,
+                   help="the tolerable false-alarm rate in budget mode (default 1)")
+    p.add_argument("--range-low", type=float, help="lowest physically possible value (engineering range)")
+    p.add_argument("--range-high", type=float, help="highest physically possible value")
     p.set_defaults(handler=_handle)
 
 

@@ -74,7 +74,7 @@ def test_bundled_example_runs_without_a_traceback():
                             capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr
     lines = result.stdout.splitlines()
-    assert lines[0] == "timestamp,value,forecast,error,variance,z,lower,upper"
+    assert lines[0].startswith("timestamp,value,forecast,error,variance,z,lower,upper,state_spike")
     z = np.array([float(line.split(",")[5]) for line in lines[1:]])
     # The planted spike (invented Cobbleford booster station) stands out.
     assert np.nanmax(np.abs(z)) > 10
@@ -95,3 +95,24 @@ def test_score_accepts_calendar_terms(tmp_path):
     assert z.size == 1200 - 7 * 96
     # With the daily cycle in the model the held-out z are close to unit variance.
     assert 0.8 < z.std() < 1.2
+
+
+def test_score_writes_rule_states_and_an_events_file(tmp_path):
+    y = simulate_arima(800, ar=[0.6], mean=10.0, sigma=0.2, seed=14)
+    y[650] += 3.0  # a 15-sigma spike
+    write_feed(tmp_path / "f.csv", y)
+    out, events_out = tmp_path / "s.csv", tmp_path / "e.json"
+    assert main(["score", str(tmp_path / "f.csv"), "--train", "500", "--order", "1,0,0", "--feed", "ashgrove/level",
+                 "--out", str(out), "--events-out", str(events_out)]) == 0
+    with out.open() as handle:
+        rows = list(csv.DictReader(handle))
+    assert {"state_spike", "state_cusum", "state_noise_burst", "state_flatline"} <= set(rows[0])
+    assert rows[150]["state_spike"] == "active" and rows[140]["state_spike"] == "normal"
+    import json
+
+    document = json.loads(events_out.read_text())
+    spikes = [e for e in document["events"] if e["rule"] == "spike"]
+    assert len(spikes) == 1
+    assert spikes[0]["feed_id"] == "ashgrove/level" and spikes[0]["end"] is not None
+    assert datetime.fromisoformat(spikes[0]["start"]).timestamp() == 1_780_000_000 + 650 * 900
+    assert spikes[0]["caution"] == document["caution"] and "operator judgment" in document["caution"]
