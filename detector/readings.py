@@ -41,6 +41,8 @@ class Reading:
     timestamp_from_arrival: bool = False
 
     def __post_init__(self) -> None:
+        if self.timestamp.tzinfo is timezone.utc:
+            return  # the common case, kept cheap for the sources' fast paths
         if self.timestamp.tzinfo is None:
             raise ValueError(f"Reading for {self.feed_id!r}: timestamp must be timezone-aware")
         if self.timestamp.utcoffset() != timezone.utc.utcoffset(None):
