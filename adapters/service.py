@@ -1,0 +1,304 @@
+"""The service loop: sources -> engine -> store (and the alarm publisher).
+
+One :class:`Service` owns the running parts and does, until it is asked to stop:
+
+1. poll each source for readings (CSV followers, MQTT subscriptions);
+2. feed every reading to the engine, which returns events, state changes
+   and refit requests (the engine does no I/O);
+3. stage the events, and the sources' durable marks (CSV byte offsets) for
+   the readings just processed, in the store;
+4. commit at most every ``flush_interval_s`` (or when ``max_staged_events``
+   pile up): events and offsets go in ONE transaction, and only after the
+   commit returned are the sources acknowledged (MQTT PUBACK) and the
+   events published. So an offset or an ack never runs ahead of the
+   committed events;
+5. run refits in a background process pool (at most one worker per core);
+   a finished fit is recorded as a new model version with its reason and
+   swapped in by the engine at once;
+6. save each feed's checkpoint (stream state and model version) on a timer
+   and at shutdown, so a restart resumes without a learning phase;
+7. log one line per event, connection change, refit and reject count, and
+   a summary line every ``summary_interval_s`` (readings/s, queue depth,
+   alarms active).
+
+:meth:`Service.request_stop` (wired to SIGTERM and SIGINT by ``leadline run``)
+stops the sources, drains what they still hold, flushes events and
+checkpoints, and :meth:`Service.run` returns 0.
+
+Notes
+-----
+Readings processed after the last checkpoint and before a crash are not
+replayed into the model when they caused no events and their marks were
+committed; after a restart the engine resumes from the checkpoint and the
+missing slots are predict-only gaps. No committed event is lost or
+duplicated either way: the store's key (feed, rule, start) absorbs replays.
+"""
+
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import os
+import threading
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future, ProcessPoolExecutor
+from datetime import datetime, timezone
+from typing import Any
+
+from leadline.detector.errors import LeadlineError, StoreError
+
+logger = logging.getLogger("leadline.service")
+
+
+def _utc_now() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+def log_fields(message: str, **fields: Any) -> str:
+    """``message key=value ...``: one structured log line."""
+    parts = [message]
+    for key, value in fields.items():
+        text = f"{value:.4g}" if isinstance(value, float) else str(value)
+        if " " in text or "=" in text:
+            text = '"' + text.replace('"', "'") + '"'
+        parts.append(f"{key}={text}")
+    return " ".join(parts)
+
+
+class Service:
+    """Wires sources, the engine, the store and an optional alarm publisher.
+
+    Parameters
+    ----------
+    engine : leadline.detector.engine.Engine
+    store : EventStore
+    sources : sequence of Source
+    publisher : object with ``publish(events)``, optional
+        Called with the events of each commit, after the commit returned.
+    refit : callable, optional
+        ``refit(request) -> FittedModel``; default the engine's ``run_refit``.
+    refit_workers : int
+        Background processes for refits (capped at the number of cores);
+        0 runs refits inline, in this process (replays and tests).
+    checkpoint_interval_s, tick_interval_s, summary_interval_s : float
+    batch_size : int
+        Readings taken from one source per poll.
+    clock : callable
+        Wall-clock time for ticks (the stale rule).
+    """
+
+    def __init__(self, *, engine: Any, store: Any, sources: Sequence[Any], publisher: Any = None,
+                 refit: Callable[[Any], Any] | None = None, refit_workers: int = 1,
+                 checkpoint_interval_s: float = 30.0, tick_interval_s: float = 1.0,
+                 summary_interval_s: float = 60.0, batch_size: int = 2000,
+                 clock: Callable[[], datetime] = _utc_now) -> None:
+        from leadline.detector.engine import run_refit
+
+        self.engine = engine
+        self.store = store
+        self.sources = list(sources)
+        self.publisher = publisher
+        self.refit = refit or run_refit
+        self.refit_workers = max(0, min(int(refit_workers), os.cpu_count() or 1))
+        self.checkpoint_interval_s = checkpoint_interval_s
+        self.tick_interval_s = tick_interval_s
+        self.summary_interval_s = summary_interval_s
+        self.batch_size = batch_size
+        self.clock = clock
+        self._stop = threading.Event()
+        self._pool: ProcessPoolExecutor | None = None
+        self._fits: dict[Future, Any] = {}
+        self._pending_acks: list[tuple[Any, list]] = []
+        self._to_publish: list[Any] = []
+        self._last_commit = time.monotonic()
+        self._last_checkpoint = time.monotonic()
+        self._last_tick = 0.0
+        self._last_summary = time.monotonic()
+        self._readings_since_summary = 0
+        self.readings_total = 0
+        self.events_total = 0
+        self.refits_total = 0
+
+    # ---------------------------------------------------------------- control
+    def request_stop(self) -> None:
+        """Ask :meth:`run` to stop, drain, flush and return (safe from a signal handler)."""
+        self._stop.set()
+
+    @property
+    def stopping(self) -> bool:
+        return self._stop.is_set()
+
+    def run(self, until_idle: Callable[[], bool] | None = None) -> int:
+        """Run until :meth:`request_stop` (or ``until_idle()`` returns True); return 0.
+
+        Raises
+        ------
+        LeadlineError
+            When the store fails for good; what was committed stays committed.
+        """
+        if self.refit_workers > 0:
+            self._pool = ProcessPoolExecutor(max_workers=self.refit_workers,
+                                             mp_context=multiprocessing.get_context("spawn"))
+        for source in self.sources:
+            source.start()
+            logger.info(log_fields("source started", source=source.name, kind=type(source).__name__))
+        try:
+            while not self._stop.is_set():
+                busy = self._poll_once(timeout_s=0.0)
+                if not busy:
+                    busy = self._poll_once(timeout_s=0.05)
+                self._collect_fits(block=False)
+                self._housekeeping()
+                if until_idle is not None and not busy and not self._fits and until_idle():
+                    break
+            self._shutdown()
+        finally:
+            if self._pool is not None:
+                self._pool.shutdown(wait=False, cancel_futures=True)
+        return 0
+
+    # ------------------------------------------------------------------ steps
+    def _poll_once(self, timeout_s: float) -> bool:
+        busy = False
+        for source in self.sources:
+            readings = source.poll(self.batch_size, timeout_s / max(1, len(self.sources)))
+            if readings:
+                busy = True
+                self._process(source, readings)
+            else:
+                # Rows that were only rejected still move a file's mark forward.
+                for mark in source.durable_marks(readings):
+                    self.store.stage_offset(mark)
+            for sample in source.take_rejects():
+                self.store.stage_reject(sample)
+                logger.info(log_fields("reject", source=sample.source, reason=sample.reason, where=sample.where,
+                                       detail=sample.detail))
+        return busy
+
+    def _process(self, source: Any, readings: list) -> None:
+        for reading in readings:
+            self._handle(self.engine.process(reading))
+        for mark in source.durable_marks(readings):
+            self.store.stage_offset(mark)
+        self._pending_acks.append((source, readings))
+        self.readings_total += len(readings)
+        self._readings_since_summary += len(readings)
+
+    def _handle(self, out: Any) -> None:
+        for event in out.events:
+            self.store.stage_event(event)
+            self._to_publish.append(event)
+            self.events_total += 1
+            logger.info(log_fields("event", feed=event.feed_id, rule=event.rule, severity=event.severity,
+                                   start=event.start.isoformat(), end=event.end.isoformat() if event.end else "-",
+                                   peak_abs_z=event.peak_abs_z, model_version=event.model_version,
+                                   detail=event.detail))
+        for change in out.state_changes:
+            logger.info(log_fields("feed state", feed=change.feed_id, old=change.old, new=change.new,
+                                   detail=change.detail))
+        for request in out.refit_requests:
+            self._start_fit(request)
+
+    def _start_fit(self, request: Any) -> None:
+        logger.info(log_fields("refit requested", feed=request.feed_id, reason=request.reason,
+                               points=len(request.values)))
+        if self._pool is None:
+            future: Future = Future()
+            try:
+                future.set_result(self.refit(request))
+            except Exception as exc:  # noqa: BLE001 - reported per feed, the service goes on
+                future.set_exception(exc)
+        else:
+            future = self._pool.submit(self.refit, request)
+        self._fits[future] = request
+
+    def _collect_fits(self, block: bool) -> None:
+        for future in list(self._fits):
+            if not (block or future.done()):
+                continue
+            request = self._fits.pop(future)
+            try:
+                fitted = future.result()
+            except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
+                logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
+                                          error=f"{type(exc).__name__}: {exc}"))
+                self._handle(self.engine.fit_failed(request.feed_id, str(exc)))
+                continue
+            self._install(request, fitted)
+
+    def _install(self, request: Any, fitted: Any) -> None:
+        window_start = datetime.fromtimestamp(float(request.epoch_s[0]), tz=timezone.utc)
+        window_end = datetime.fromtimestamp(float(request.epoch_s[-1]), tz=timezone.utc)
+        thresholds = self.engine.thresholds_for(request.feed_id, fitted)
+        version = self.store.record_model(request.feed_id, fitted.spec.label, fitted.params, thresholds,
+                                          fitted.summary(), self.clock(), window_start, window_end, request.reason)
+        out = self.engine.install_model(request.feed_id, fitted, version, request.reason, thresholds=thresholds)
+        self.refits_total += 1
+        logger.info(log_fields("model installed", feed=request.feed_id, version=version, model=fitted.spec.label,
+                               reason=request.reason, aicc=fitted.aicc, ljung_box_p=fitted.ljung_box_pvalue,
+                               problems="; ".join(fitted.problems) or "none"))
+        self._handle(out)
+
+    def _housekeeping(self) -> None:
+        now = time.monotonic()
+        if now - self._last_tick >= self.tick_interval_s:
+            self._last_tick = now
+            self._handle(self.engine.tick(self.clock()))
+        if now - self._last_checkpoint >= self.checkpoint_interval_s:
+            self._stage_checkpoints()
+            self._commit()
+        elif self.store.flush_due(now) or (self._pending_acks and now - self._last_commit >= 1.0):
+            self._commit()
+        if now - self._last_summary >= self.summary_interval_s:
+            self._summary(now)
+
+    def _stage_checkpoints(self) -> None:
+        for feed_id, (state, version) in self.engine.checkpoints().items():
+            self.store.stage_checkpoint(feed_id, state, version)
+        self._last_checkpoint = time.monotonic()
+
+    def _commit(self) -> None:
+        """Flush the store; then acknowledge the sources and publish, in that order."""
+        try:
+            self.store.flush()
+        except StoreError as exc:
+            # Everything stays staged; the next commit retries. Nothing is acked meanwhile.
+            logger.error(log_fields("store flush failed; will retry", error=str(exc)))
+            return
+        self._last_commit = time.monotonic()
+        acks, self._pending_acks = self._pending_acks, []
+        for source, readings in acks:
+            source.ack(readings)
+        events, self._to_publish = self._to_publish, []
+        if self.publisher is not None and events:
+            try:
+                self.publisher.publish(events)
+            except LeadlineError as exc:
+                logger.warning(log_fields("alarm publishing failed", error=str(exc), events=len(events)))
+
+    def _summary(self, now: float) -> None:
+        elapsed = max(now - self._last_summary, 1e-9)
+        status = self.engine.status()
+        active = sum(len(s.get("active_alarms", ())) for s in status)
+        depth = sum(getattr(s, "pending_messages", 0) for s in self.sources)
+        logger.info(log_fields("summary", readings_per_s=self._readings_since_summary / elapsed, feeds=len(status),
+                               queue_depth=depth, alarms_active=active, refits_running=len(self._fits),
+                               readings_total=self.readings_total, events_total=self.events_total))
+        self._last_summary = now
+        self._readings_since_summary = 0
+
+    def _shutdown(self) -> None:
+        for source in self.sources:
+            source.stop()
+        # Drain: whatever the sources still hold is processed and committed.
+        while self._poll_once(timeout_s=0.0):
+            pass
+        self._stage_checkpoints()
+        self._commit()
+        for source in self.sources:
+            close = getattr(source, "close", None)
+            if close is not None:
+                close()
+        logger.info(log_fields("stopped", readings_total=self.readings_total, events_total=self.events_total,
+                               refits=self.refits_total))
