@@ -77,35 +77,44 @@ class Service:
     publisher : object with ``publish(events)``, optional
         Called with the events of each commit, after the commit returned.
     refit : callable, optional
-        ``refit(request) -> FittedModel``; default the engine's ``run_refit``.
+        ``refit(request) -> (FittedModel, thresholds)``; default the engine's
+        ``run_refit_with_thresholds``, so the limits are computed in the worker.
     refit_workers : int
         Background processes for refits (capped at the number of cores);
         0 runs refits inline, in this process (replays and tests).
     checkpoint_interval_s, tick_interval_s, summary_interval_s : float
     batch_size : int
         Readings taken from one source per poll.
-    clock : callable
-        Wall-clock time for ticks (the stale rule).
+    clock : callable or "readings"
+        Time for the engine's ticks (the stale rule): the wall clock by
+        default; ``"readings"`` follows the newest reading's time, for a
+        replay of history or the demo.
     """
 
     def __init__(self, *, engine: Any, store: Any, sources: Sequence[Any], publisher: Any = None,
                  refit: Callable[[Any], Any] | None = None, refit_workers: int = 1,
                  checkpoint_interval_s: float = 30.0, tick_interval_s: float = 1.0,
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
-                 clock: Callable[[], datetime] = _utc_now) -> None:
-        from leadline.detector.engine import run_refit
+                 clock: Callable[[], datetime] | str = _utc_now) -> None:
+        from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
         self.store = store
         self.sources = list(sources)
         self.publisher = publisher
-        self.refit = refit or run_refit
+        self.refit = refit or run_refit_with_thresholds
         self.refit_workers = max(0, min(int(refit_workers), os.cpu_count() or 1))
         self.checkpoint_interval_s = checkpoint_interval_s
         self.tick_interval_s = tick_interval_s
         self.summary_interval_s = summary_interval_s
         self.batch_size = batch_size
-        self.clock = clock
+        self._latest_reading: datetime | None = None
+        if clock == "readings":
+            self.clock = self._reading_clock
+        elif callable(clock):
+            self.clock = clock
+        else:
+            raise ValueError(f"clock must be a callable or 'readings', got {clock!r}")
         self._stop = threading.Event()
         self._pool: ProcessPoolExecutor | None = None
         self._fits: dict[Future, Any] = {}
@@ -119,6 +128,9 @@ class Service:
         self.readings_total = 0
         self.events_total = 0
         self.refits_total = 0
+
+    def _reading_clock(self) -> datetime:
+        return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
 
     # ---------------------------------------------------------------- control
     def request_stop(self) -> None:
@@ -179,6 +191,8 @@ class Service:
     def _process(self, source: Any, readings: list) -> None:
         for reading in readings:
             self._handle(self.engine.process(reading))
+            if self._latest_reading is None or reading.timestamp > self._latest_reading:
+                self._latest_reading = reading.timestamp
         for mark in source.durable_marks(readings):
             self.store.stage_offset(mark)
         self._pending_acks.append((source, readings))
@@ -219,21 +233,21 @@ class Service:
                 continue
             request = self._fits.pop(future)
             try:
-                fitted = future.result()
+                fitted, thresholds = future.result()
             except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
                 logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
                                           error=f"{type(exc).__name__}: {exc}"))
-                self._handle(self.engine.fit_failed(request.feed_id, str(exc)))
+                self._handle(self.engine.refit_failed(request.feed_id, str(exc)))
                 continue
-            self._install(request, fitted)
+            self._install(request, fitted, thresholds)
 
-    def _install(self, request: Any, fitted: Any) -> None:
+    def _install(self, request: Any, fitted: Any, thresholds: dict) -> None:
         window_start = datetime.fromtimestamp(float(request.epoch_s[0]), tz=timezone.utc)
         window_end = datetime.fromtimestamp(float(request.epoch_s[-1]), tz=timezone.utc)
-        thresholds = self.engine.thresholds_for(request.feed_id, fitted)
         version = self.store.record_model(request.feed_id, fitted.spec.label, fitted.params, thresholds,
                                           fitted.summary(), self.clock(), window_start, window_end, request.reason)
-        out = self.engine.install_model(request.feed_id, fitted, version, request.reason, thresholds=thresholds)
+        out = self.engine.install_model(request.feed_id, fitted, version, request.reason, thresholds=thresholds,
+                                        request=request)
         self.refits_total += 1
         logger.info(log_fields("model installed", feed=request.feed_id, version=version, model=fitted.spec.label,
                                reason=request.reason, aicc=fitted.aicc, ljung_box_p=fitted.ljung_box_pvalue,

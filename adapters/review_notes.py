@@ -1,0 +1,121 @@
+"""``leadline ack``, ``leadline note`` and ``leadline shelve``: entries of the audit trail.
+
+Each appends a note to the store and never edits one: acknowledging again
+adds a second acknowledgement, and ``shelve FEED --end`` ends a shelving by
+a new note whose expiry is now (the latest shelving note of a feed decides).
+Notes carry the operator's name (``--by``) and the time of the command.
+"""
+
+from __future__ import annotations
+
+import sys
+from datetime import timedelta
+from typing import TextIO
+
+from leadline.detector.durations import parse_duration_s
+from leadline.detector.errors import DataError, SpecError, StoreError
+
+from . import review
+from .config_values import did_you_mean
+from .review import add_store_options, open_review, show_time
+from .store.eventstore import EventStore
+from .store.records import StoredEvent
+
+
+def _events(store: EventStore, ids: list[int], command: str) -> list[StoredEvent]:
+    """The events with these ids (each once); an error naming every unknown one."""
+    unique = list(dict.fromkeys(ids))
+    found = {i: store.event(i) for i in unique}
+    missing = [i for i, e in found.items() if e is None]
+    if missing:
+        what = "ids" if len(missing) > 1 else "id"
+        raise StoreError(f"no event with {what} {', '.join(map(str, missing))} in {store.url}; nothing was "
+                         f"{command}. List event ids with: leadline events")
+    return [found[i] for i in unique]  # type: ignore[misc]
+
+
+def _describe(stored: StoredEvent, zone) -> str:
+    ev = stored.event
+    return f"event {stored.id} ({ev.feed_id} {ev.rule} {ev.severity}, started {show_time(ev.start, zone)})"
+
+
+def run_ack(args, out: TextIO | None = None) -> int:
+    out = out or sys.stdout
+    with open_review(args) as rv:
+        events = _events(rv.store, args.event, "acknowledged")
+        now = review.utc_now()
+        for stored in events:
+            before = next((n for n in stored.notes if n.kind == "ack"), None)
+            note_id = rv.store.add_note(stored.id, "ack", args.by, args.note or "", at=now)
+            again = f"; it was already acknowledged by {before.operator} at {show_time(before.at, rv.zone)}" \
+                if before else ""
+            print(f"Acknowledged {_describe(stored, rv.zone)} as {args.by} (note {note_id}){again}.", file=out)
+    return 0
+
+
+def run_note(args, out: TextIO | None = None) -> int:
+    out = out or sys.stdout
+    with open_review(args) as rv:
+        (stored,) = _events(rv.store, [args.event], "noted")
+        note_id = rv.store.add_note(stored.id, "comment", args.by, args.note, at=review.utc_now())
+        print(f"Added note {note_id} to {_describe(stored, rv.zone)}.", file=out)
+    return 0
+
+
+def run_shelve(args, out: TextIO | None = None) -> int:
+    out = out or sys.stdout
+    if args.end == bool(args.duration):
+        raise DataError("give --for DURATION (such as 8h) to shelve, or --end to end a shelving now")
+    span_s = 0.0
+    if args.duration:
+        try:
+            span_s = parse_duration_s(args.duration)
+        except SpecError as exc:
+            raise DataError(f"--for {args.duration!r}: expected a duration such as 30min, 8h or 2d") from exc
+    with open_review(args) as rv:
+        feeds = [f.feed_id for f in rv.store.feeds()]
+        if args.feed not in feeds:
+            hint = did_you_mean(args.feed, feeds)
+            raise StoreError(f"no feed {args.feed!r} in {rv.store.url}" + (f"; {hint}" if hint else "")
+                             + "; nothing was shelved. List feeds with: leadline status")
+        now = review.utc_now()
+        until = now + timedelta(seconds=span_s)
+        note_id = rv.store.shelve(args.feed, args.by, args.note, until, at=now)
+        if args.end:
+            print(f"Ended the shelving of {args.feed} as {args.by} (note {note_id}).", file=out)
+        else:
+            print(f"Shelved {args.feed} until {show_time(until, rv.zone)} as {args.by} (note {note_id}).", file=out)
+    return 0
+
+
+def _common(p, note_required: bool) -> None:
+    add_store_options(p)
+    p.add_argument("--by", required=True, metavar="NAME", help="who is writing this (kept in the audit trail)")
+    p.add_argument("--note", required=note_required, metavar="TEXT",
+                   help="what was found or done" + ("" if note_required else " (optional)"))
+
+
+def add_parser(subparsers) -> None:
+    """Registers ``ack``, ``note`` and ``shelve``."""
+    p = subparsers.add_parser("ack", help="acknowledge events",
+                              description="Acknowledge one or more events: an entry in the audit trail "
+                                          "with your name, the time and an optional note.")
+    p.add_argument("event", nargs="+", type=int, metavar="EVENT", help="event id, as listed by leadline events")
+    _common(p, note_required=False)
+    p.set_defaults(handler=run_ack)
+
+    p = subparsers.add_parser("note", help="add a comment to an event",
+                              description="Add a comment to an event's audit trail.")
+    p.add_argument("event", type=int, metavar="EVENT", help="event id, as listed by leadline events")
+    _common(p, note_required=True)
+    p.set_defaults(handler=run_note)
+
+    p = subparsers.add_parser("shelve", help="shelve a feed for a while",
+                              description="Shelve a feed (for example during maintenance) for a stated time, "
+                                          "with your name and the reason; --end ends a shelving early.")
+    p.add_argument("feed", metavar="FEED", help="the feed id, as listed by leadline status")
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--for", dest="duration", metavar="DURATION", help="how long, such as 30min, 8h or 2d")
+    group.add_argument("--end", action="store_true", help="end the feed's shelving now")
+    _common(p, note_required=True)
+    p.set_defaults(handler=run_shelve)
