@@ -7,7 +7,7 @@ import sys
 
 from leadline.detector.errors import LeadlineError
 
-from . import check_config, review_events, review_export, review_notes, review_status, run, score
+from . import check_config, demo, review_events, review_export, review_notes, review_status, run, score
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -19,6 +19,7 @@ def build_parser() -> argparse.ArgumentParser:
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
     score.add_parser(subparsers)
     run.add_parser(subparsers)
+    demo.add_parser(subparsers)
     check_config.add_parser(subparsers)
     review_events.add_parser(subparsers)
     review_notes.add_parser(subparsers)

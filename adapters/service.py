@@ -150,6 +150,10 @@ class Service:
             When the store fails for good; what was committed stays committed.
         """
         if self.refit_workers > 0:
+            # One BLAS thread per worker: the pool already uses the cores, and
+            # nested BLAS threads made each fit several times slower here.
+            for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+                os.environ.setdefault(name, "1")
             self._pool = ProcessPoolExecutor(max_workers=self.refit_workers,
                                              mp_context=multiprocessing.get_context("spawn"))
         for source in self.sources:
