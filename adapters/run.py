@@ -181,6 +181,6 @@ def _handle(args) -> int:
     for warning in config.warnings:
         logger.warning(log_fields("config", warning=warning))
     service = build_service(config, from_start=args.from_start, replay=args.replay)
-    logger.info(log_fields("leadline run", config=str(config.path), store=config.store.safe_url(),
+    logger.info(log_fields("leadline run", config=str(config.path), store=config.store.safe_url,
                            sources=len(config.sources), caution=CAUTION))
     return run_service(service)

@@ -15,8 +15,9 @@ One :class:`Service` owns the running parts and does, until it is asked to stop:
 5. run refits in a background process pool (at most one worker per core);
    a finished fit is recorded as a new model version with its reason and
    swapped in by the engine at once;
-6. save each feed's checkpoint (stream state and model version) on a timer
-   and at shutdown, so a restart resumes without a learning phase;
+6. save each feed's checkpoint (stream state and model version) on a timer,
+   after each new model and at shutdown, so a restart resumes without a
+   learning phase;
 7. log one line per event, connection change, refit and reject count, and
    a summary line every ``summary_interval_s`` (readings/s, queue depth,
    alarms active).
@@ -169,6 +170,13 @@ class Service:
                 if until_idle is not None and not busy and not self._fits and until_idle():
                     break
             self._shutdown()
+        except BaseException:
+            # Keep what was already staged; nothing is acknowledged past it.
+            try:
+                self._commit()
+            except Exception:  # noqa: BLE001 - the original error is the one to report
+                logger.exception("final commit after a failure failed")
+            raise
         finally:
             if self._pool is not None:
                 self._pool.shutdown(wait=False, cancel_futures=True)
@@ -253,6 +261,10 @@ class Service:
         out = self.engine.install_model(request.feed_id, fitted, version, request.reason, thresholds=thresholds,
                                         request=request)
         self.refits_total += 1
+        if self.engine.state_of(request.feed_id) == "watching":
+            # A new model is made durable with the next commit, not only at the next checkpoint timer,
+            # so a crash soon after a fit does not send the feed back to learning.
+            self.store.stage_checkpoint(request.feed_id, self.engine.checkpoint(request.feed_id), version)
         logger.info(log_fields("model installed", feed=request.feed_id, version=version, model=fitted.spec.label,
                                reason=request.reason, aicc=fitted.aicc, ljung_box_p=fitted.ljung_box_pvalue,
                                problems="; ".join(fitted.problems) or "none"))
@@ -299,7 +311,10 @@ class Service:
         elapsed = max(now - self._last_summary, 1e-9)
         status = self.engine.status()
         active = sum(len(s.get("active_alarms", ())) for s in status)
-        depth = sum(getattr(s, "pending_messages", 0) for s in self.sources)
+        depth = 0
+        for source in self.sources:
+            pending = getattr(source, "pending_messages", 0)
+            depth += pending() if callable(pending) else pending
         logger.info(log_fields("summary", readings_per_s=self._readings_since_summary / elapsed, feeds=len(status),
                                queue_depth=depth, alarms_active=active, refits_running=len(self._fits),
                                readings_total=self.readings_total, events_total=self.events_total))
