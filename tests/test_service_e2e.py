@@ -199,6 +199,9 @@ def test_kill_9_mid_stream_loses_and_duplicates_nothing(site):
     append_csv(folder, csv_values, range(0, 370))
     wait_for(lambda: any(k[0] == "ridgeway/hilltop/pressure" for k in spike_keys(folder)), 90,
              "the first spike committed")
+    # Both feeds past learning (a feed still learning has no checkpoint and would learn again).
+    wait_for(lambda: (folder / "service.log").read_text().count("model installed") == 2, 60, "both models")
+    time.sleep(1.5)  # one commit interval, so the new models' checkpoints are durable
     committed = set(spike_keys(folder))
     process.send_signal(signal.SIGKILL)  # no drain, no flush
     process.wait(timeout=30)
