@@ -1,6 +1,5 @@
 """Automatic order selection: KPSS for d, then a stepwise AICc search."""
 
-import numpy as np
 import pytest
 from statsmodels.tsa.statespace.sarimax import SARIMAX
 

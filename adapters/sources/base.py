@@ -86,6 +86,3 @@ class Source(Protocol):
     def stop(self) -> None:
         """Stop reading; pending readings may still be polled and acked."""
 
-
-def origin_of(reading: Reading) -> Any:
-    return reading.origin
