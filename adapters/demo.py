@@ -116,7 +116,7 @@ def write_history(folder: Path, scenario) -> int:
     return rows
 
 
-def append_live(folder: Path, scenario, out: TextIO, seconds: float, progress) -> int:
+def append_live(folder: Path, scenario, seconds: float, progress) -> int:
     """Append the live days slot by slot, like a head-end exporting every 15 minutes."""
     rows = 0
     slots = scenario_module.LIVE_DAYS * scenario_module.SLOTS_PER_DAY
@@ -126,8 +126,7 @@ def append_live(folder: Path, scenario, out: TextIO, seconds: float, progress) -
         day = slot // scenario_module.SLOTS_PER_DAY
         path = day_file(folder, scenario, day)
         new = not path.exists()
-        lines = [line for line in scenario_module.rows_for_day(scenario, day)
-                 if line.startswith(scenario.slot_time(slot).isoformat().replace("+00:00", "Z"))]
+        lines = scenario_module.rows_for_slot(scenario, slot)
         with path.open("a", encoding="utf-8") as handle:
             if new:
                 handle.write("timestamp,feed,value\n")
@@ -180,12 +179,12 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     thread = threading.Thread(target=serve, name="leadline-demo-service", daemon=True)
     thread.start()
     progress("service started: following the CSV files, learning each feed, fitting in the background")
-    live_rows = append_live(folder, scenario, out, live_seconds, progress)
+    live_rows = append_live(folder, scenario, live_seconds, progress)
     expected = history_rows + live_rows
     deadline = time.monotonic() + 120.0
     while time.monotonic() < deadline and not failure:
         states = {s["state"] for s in service.engine.status()}
-        if service.readings_total >= expected and not service._fits and states == {"watching"}:
+        if service.readings_total >= expected and not service.refits_running and states == {"watching"}:
             break
         time.sleep(0.2)
     service.request_stop()

@@ -139,11 +139,13 @@ def build_scenario(seed: int = 1871) -> Scenario:
     return Scenario(feeds, faults)
 
 
+def rows_for_slot(scenario: Scenario, slot: int) -> list[str]:
+    """CSV lines ``timestamp,feed,value`` of one slot, one per feed."""
+    stamp = scenario.slot_time(slot).isoformat().replace("+00:00", "Z")
+    return [f"{stamp},{feed_id},{float(values[slot])!r}" for feed_id, values in scenario.feeds.items()]
+
+
 def rows_for_day(scenario: Scenario, day: int) -> list[str]:
-    """CSV lines ``timestamp,feed,value`` of one day, in time order."""
-    lines = []
-    for slot in range(day * SLOTS_PER_DAY, (day + 1) * SLOTS_PER_DAY):
-        stamp = scenario.slot_time(slot).isoformat().replace("+00:00", "Z")
-        for feed_id, values in scenario.feeds.items():
-            lines.append(f"{stamp},{feed_id},{float(values[slot])!r}")
-    return lines
+    """CSV lines of one day, in time order."""
+    return [line for slot in range(day * SLOTS_PER_DAY, (day + 1) * SLOTS_PER_DAY)
+            for line in rows_for_slot(scenario, slot)]

@@ -142,6 +142,11 @@ class Service:
     def stopping(self) -> bool:
         return self._stop.is_set()
 
+    @property
+    def refits_running(self) -> int:
+        """Fits submitted and not yet installed."""
+        return len(self._fits)
+
     def run(self, until_idle: Callable[[], bool] | None = None) -> int:
         """Run until :meth:`request_stop` (or ``until_idle()`` returns True); return 0.
 

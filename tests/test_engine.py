@@ -18,17 +18,17 @@ from datetime import datetime, timedelta, timezone
 import numpy as np
 import pytest
 
-from leadline.detector.engine import (Engine, EngineOutput, FeedSettings, RefitRequest, StateChange, run_refit,
+from leadline.detector.engine import (Engine, EngineOutput, RefitRequest, StateChange, run_refit,
                                       run_refit_with_thresholds, thresholds_for)
 from leadline.detector.errors import ConfigError, DataError
 from leadline.detector.events import CAUTION
 from leadline.detector.readings import Reading
 from leadline.detector.rules import FeedMonitor, MonitorConfig
 from leadline.detector.spec import ModelSpec
+from engine_helpers import PHI, ar1, settings
 
 T0 = datetime(2024, 3, 4, tzinfo=timezone.utc)
 INTERVAL_S = 60.0
-PHI = 0.6
 FEED = "millbrook/flow/dm-07"
 
 
@@ -36,19 +36,8 @@ def at(i: float) -> datetime:
     return T0 + timedelta(seconds=INTERVAL_S * i)
 
 
-def ar1(n: int, seed: int, phi: float = PHI, mean: float = 40.0) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    e = rng.standard_normal(n)
-    x = np.zeros(n)
-    for t in range(1, n):
-        x[t] = phi * x[t - 1] + e[t]
-    return mean + x
 
 
-def settings(**changes) -> FeedSettings:
-    base = dict(spec=ModelSpec.ar(1), train_points=300, min_train_points=100, refit_every_s=None)
-    base.update(changes)
-    return FeedSettings(**base)
 
 
 class Driver:

@@ -20,13 +20,13 @@ from scipy import integrate
 from scipy.stats import norm
 
 from leadline.detector.counters import CounterDeltas
-from leadline.detector.engine import (Engine, EngineOutput, FeedSettings, RefitRequest, RingBuffer,
+from leadline.detector.engine import (Engine, EngineOutput, RefitRequest, RingBuffer,
                                       clipped_square_mean, ljung_box_pvalue, run_refit)
 from leadline.detector.errors import DataError, StateFormatError
 from leadline.detector.events import CAUTION
 from leadline.detector.readings import Reading
 from leadline.detector.rules import MonitorConfig
-from leadline.detector.spec import ModelSpec
+from engine_helpers import ar1, settings
 
 T0 = datetime(2024, 5, 6, tzinfo=timezone.utc)
 INTERVAL_S = 60.0
@@ -37,19 +37,8 @@ def at(i: float) -> datetime:
     return T0 + timedelta(seconds=INTERVAL_S * i)
 
 
-def ar1(n: int, seed: int, phi: float = 0.6, mean: float = 40.0, sd: float = 1.0) -> np.ndarray:
-    rng = np.random.default_rng(seed)
-    e = sd * rng.standard_normal(n)
-    x = np.zeros(n)
-    for t in range(1, n):
-        x[t] = phi * x[t - 1] + e[t]
-    return mean + x
 
 
-def settings(**changes) -> FeedSettings:
-    base = dict(spec=ModelSpec.ar(1), train_points=300, min_train_points=100, refit_every_s=None)
-    base.update(changes)
-    return FeedSettings(**base)
 
 
 def drive(engine: Engine, values, start: int = 0, version: list | None = None, install: bool = True,
