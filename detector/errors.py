@@ -7,17 +7,28 @@ the csv and json modules) into these types at the boundary, with
 
 ::
 
-    LeadlineError
-    ├── SpecError            a model or seasonality spec that cannot be built
+    LeadlineError                (* = also a ValueError)
+    ├── SpecError *          a model or seasonality spec that cannot be built
     ├── FitError             statsmodels could not fit the data at all
-    ├── DataError            values or timestamps that cannot be put on a grid
-    ├── StateFormatError     saved stream state that cannot be loaded
-    ├── RuleError            an alarm rule with impossible parameters
-    ├── RejectError          one bad input record (a CSV row, an MQTT payload)
-    ├── ConfigError          a config file key with a bad value
+    ├── DataError *          values or timestamps that cannot be used: not on a
+    │                        grid, not numeric, a naive timestamp, an unknown severity
+    ├── ParameterError *     an argument of a core call outside its allowed range
+    │                        (interval coverage, forecast horizon, level shift)
+    ├── StateFormatError *   saved stream state that cannot be loaded
+    ├── RuleError *          an alarm rule with impossible parameters
+    ├── RejectError *        one bad input record (a CSV row, an MQTT payload)
+    ├── ConfigError *        a config file key with a bad value
     ├── StoreError           the event store refused or failed an operation
     │   └── SchemaVersionError   the database schema is unknown or newer
     └── SourceError          a source (file, broker) failed as a whole
+
+The classes marked * also derive from :class:`ValueError`, deliberately:
+each is about a value the caller handed in, and ``except ValueError`` is
+Python's convention for that (the standard library and numpy raise it for a
+bad argument), so code that guards a call that way keeps working, while a
+caller that wants only leadline's errors catches :class:`LeadlineError`.
+A failed fit, a store and a source fail for reasons other than one bad value
+and are not ValueErrors.
 
 Notes
 -----
@@ -42,7 +53,12 @@ class FitError(LeadlineError):
 
 
 class DataError(LeadlineError, ValueError):
-    """Values or timestamps that cannot be used (unsorted, not numeric)."""
+    """Values or timestamps that cannot be used (unsorted, not numeric, naive)."""
+
+
+class ParameterError(LeadlineError, ValueError):
+    """An argument of a core call outside its allowed range (an interval
+    coverage, a forecast horizon, a level shift)."""
 
 
 class StateFormatError(LeadlineError, ValueError):

@@ -12,6 +12,8 @@ from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Any
 
+from .errors import DataError
+
 #: The same text is attached to every event, every listing and every export.
 CAUTION = (
     "Advisory only: leadline alarms support, and never replace, operator judgment. "
@@ -52,6 +54,12 @@ class AlarmEvent:
         One line a person can read: what the rule saw.
     caution : str
         Always :data:`CAUTION`.
+
+    Raises
+    ------
+    DataError
+        When ``severity`` is not one of :data:`SEVERITIES`, or ``start`` or
+        ``end`` is not a timezone-aware datetime.
     """
 
     feed_id: str
@@ -71,11 +79,13 @@ class AlarmEvent:
 
     def __post_init__(self) -> None:
         if self.severity not in SEVERITIES:
-            raise ValueError(f"severity must be one of {SEVERITIES}, got {self.severity!r}")
-        if self.start.tzinfo is None:
-            raise ValueError("AlarmEvent.start must be timezone-aware (UTC)")
-        if self.end is not None and self.end.tzinfo is None:
-            raise ValueError("AlarmEvent.end must be timezone-aware (UTC)")
+            raise DataError(
+                f"AlarmEvent for {self.feed_id!r}: severity must be one of {SEVERITIES}, got {self.severity!r}"
+            )
+        if getattr(self.start, "tzinfo", None) is None:
+            raise DataError(f"AlarmEvent for {self.feed_id!r}: start must be a timezone-aware datetime (UTC)")
+        if self.end is not None and getattr(self.end, "tzinfo", None) is None:
+            raise DataError(f"AlarmEvent for {self.feed_id!r}: end must be a timezone-aware datetime (UTC) or None")
 
     @property
     def key(self) -> tuple[str, str, datetime]:

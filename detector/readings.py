@@ -13,6 +13,8 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import Any
 
+from .errors import DataError
+
 
 @dataclass(frozen=True, slots=True)
 class Reading:
@@ -32,6 +34,11 @@ class Reading:
         offset, an MQTT message id). Only that source interprets it.
     timestamp_from_arrival : bool
         True when the payload carried no time and the arrival time was used.
+
+    Raises
+    ------
+    DataError
+        When ``timestamp`` is not a timezone-aware datetime.
     """
 
     feed_id: str
@@ -41,10 +48,17 @@ class Reading:
     timestamp_from_arrival: bool = False
 
     def __post_init__(self) -> None:
-        if self.timestamp.tzinfo is timezone.utc:
+        try:
+            tzinfo = self.timestamp.tzinfo
+        except AttributeError:
+            raise DataError(
+                f"Reading for {self.feed_id!r}: timestamp must be a timezone-aware datetime, "
+                f"got {type(self.timestamp).__name__}"
+            ) from None
+        if tzinfo is timezone.utc:
             return  # the common case, kept cheap for the sources' fast paths
-        if self.timestamp.tzinfo is None:
-            raise ValueError(f"Reading for {self.feed_id!r}: timestamp must be timezone-aware")
+        if tzinfo is None:
+            raise DataError(f"Reading for {self.feed_id!r}: timestamp must be timezone-aware")
         if self.timestamp.utcoffset() != timezone.utc.utcoffset(None):
             object.__setattr__(self, "timestamp", self.timestamp.astimezone(timezone.utc))
 

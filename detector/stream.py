@@ -51,7 +51,7 @@ from typing import Any, Protocol
 import numpy as np
 from scipy.stats import norm
 
-from .errors import StateFormatError
+from .errors import ParameterError, StateFormatError
 from .innovation import Innovation
 from .statespace import LinearSystem
 
@@ -131,6 +131,13 @@ class Stream:
         JSON-serialisable facts about the model (spec, parameter names),
         saved with the state.
 
+    Raises
+    ------
+    ParameterError
+        When ``level`` is not in (0, 1); :meth:`forecast` and
+        :meth:`shift_level` raise it for a horizon below 1 and a non-finite
+        shift.
+
     Notes
     -----
     See the module docstring for the equations.
@@ -151,7 +158,7 @@ class Stream:
         steady: bool = False,
     ) -> None:
         if not 0.0 < level < 1.0:
-            raise ValueError(f"level must be in (0, 1), got {level}")
+            raise ParameterError(f"level must be in (0, 1), got {level}")
         self.system = system
         self.level = float(level)
         self.model_version = model_version
@@ -321,7 +328,7 @@ class Stream:
             predicting through the slots with no readings.
         """
         if horizon < 1:
-            raise ValueError(f"horizon must be >= 1, got {horizon}")
+            raise ParameterError(f"horizon must be >= 1, got {horizon}")
         a = self.state
         P = self._P.copy()
         mean = np.empty(horizon)
@@ -341,7 +348,7 @@ class Stream:
         not scored as a train of anomalies. The shift is saved with the state.
         """
         if not math.isfinite(delta):
-            raise ValueError(f"level shift must be finite, got {delta}")
+            raise ParameterError(f"level shift must be finite, got {delta}")
         self._level_offset += float(delta)
         self._d_const = self.system.obs_intercept + self._level_offset
         self._d_len = 0  # recompute the calendar block with the new constant
@@ -376,8 +383,8 @@ class Stream:
         Raises
         ------
         StateFormatError
-            When the bytes are not a leadline stream state, or of a format
-            version this build does not read.
+            When the bytes are not a leadline stream state, are corrupt, or
+            are of a format version this build does not read.
         """
         if not isinstance(data, (bytes, bytearray, memoryview)):
             raise StateFormatError(f"stream state must be bytes, got {type(data).__name__}")
@@ -392,26 +399,33 @@ class Stream:
         start = len(_MAGIC) + 6
         try:
             header = json.loads(data[start : start + header_len].decode("utf-8"))
+            if not isinstance(header, dict):
+                raise StateFormatError(f"stream state header is a JSON {type(header).__name__}, expected an object")
             with np.load(io.BytesIO(data[start + header_len :]), allow_pickle=False) as archive:
                 arrays = {name: archive[name] for name in archive.files}
             system = LinearSystem.from_arrays(arrays)
             state, cov = arrays["state"], arrays["cov"]
-        except (ValueError, KeyError, UnicodeDecodeError, OSError, zipfile.BadZipFile) as exc:
-            raise StateFormatError(f"stream state is corrupt: {exc}") from exc
-        regression = None
-        if header.get("regression") is not None:
-            from .seasonality import regression_from_dict
+            regression = None
+            if header.get("regression") is not None:
+                from .seasonality import regression_from_dict
 
-            regression = regression_from_dict(header["regression"])
-        return cls(
-            system,
-            state,
-            cov,
-            header["step"],
-            level=header["level"],
-            model_version=header["model_version"],
-            regression=regression,
-            meta=header.get("meta"),
-            level_offset=header.get("level_offset", 0.0),
-            steady=header.get("steady", False),
-        )
+                regression = regression_from_dict(header["regression"])
+            return cls(
+                system,
+                state,
+                cov,
+                header["step"],
+                level=header["level"],
+                model_version=header["model_version"],
+                regression=regression,
+                meta=header.get("meta"),
+                level_offset=header.get("level_offset", 0.0),
+                steady=header.get("steady", False),
+            )
+        except StateFormatError:
+            raise
+        except (ValueError, KeyError, IndexError, TypeError, AttributeError, UnicodeDecodeError, OSError,
+                EOFError, ZeroDivisionError, zipfile.BadZipFile, np.linalg.LinAlgError) as exc:
+            # ValueError covers leadline's own ValueErrors too (a saved level outside (0, 1),
+            # an unknown regression kind): in a loaded state they all mean a corrupt state.
+            raise StateFormatError(f"stream state is corrupt: {type(exc).__name__}: {exc}") from exc
