@@ -35,6 +35,21 @@ logger = logging.getLogger("leadline.sources.mqtt")
 
 PROTOCOLS = {"3.1.1": mqtt.MQTTv311, "5": mqtt.MQTTv5}
 
+#: Longest MQTT UTF-8 string (client id), in bytes: a two-byte length prefix
+#: (OASIS MQTT Version 5.0, section 1.5.4; Version 3.1.1, section 1.5.3).
+MAX_STRING_BYTES = 65535
+
+#: Integer settings and their ranges. Keep Alive is a Two Byte Integer (MQTT 5.0
+#: section 3.1.2.10), Session Expiry Interval a Four Byte Integer (3.1.2.11.2),
+#: Receive Maximum 1..65535 (3.1.2.11.3); the reconnect backoff is leadline's own.
+_INTEGER_RANGES = (
+    ("keepalive_s", 0, 65535),
+    ("session_expiry_s", 0, 2**32 - 1),
+    ("receive_maximum", 1, 65535),
+    ("reconnect_min_s", 1, 2**31 - 1),
+    ("reconnect_max_s", 1, 2**31 - 1),
+)
+
 
 @dataclass(frozen=True)
 class MqttSettings:
@@ -82,8 +97,18 @@ class MqttSettings:
     reconnect_max_s: int = 30
 
     def __post_init__(self) -> None:
+        # Everything paho would refuse, or only find out about in its network
+        # thread, is checked here: a paho client owns sockets from its constructor on.
         if not isinstance(self.client_id, str) or not self.client_id:
             raise ConfigError("mqtt.client_id: expected a fixed, non-empty client id (the session is kept under it)")
+        if len(self.client_id.encode("utf-8")) > MAX_STRING_BYTES:
+            raise ConfigError(f"mqtt.client_id: at most {MAX_STRING_BYTES} bytes in UTF-8 (an MQTT string)")
+        if not isinstance(self.host, str) or not self.host.strip():
+            raise ConfigError(f"mqtt.host: expected a host name or IP address, got {self.host!r}")
+        for key, low, high in _INTEGER_RANGES:
+            value = getattr(self, key)
+            if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+                raise ConfigError(f"mqtt.{key}: expected an integer in {low}..{high}, got {value!r}")
         if self.protocol not in PROTOCOLS:
             raise ConfigError(f"mqtt.protocol: expected '3.1.1' or '5', got {self.protocol!r}")
         if not isinstance(self.port, int) or not 0 < self.port < 65536:
@@ -218,13 +243,22 @@ def build_client(settings: MqttSettings, *, manual_ack: bool = False) -> Recordi
 
 
 def connect_async(client: mqtt.Client, settings: MqttSettings) -> None:
-    """Start connecting in the background; a broker that is down is retried."""
-    if settings.protocol == "5":
-        properties = Properties(PacketTypes.CONNECT)
-        properties.SessionExpiryInterval = settings.session_expiry_s
-        properties.ReceiveMaximum = settings.receive_maximum
-        client.connect_async(
-            settings.host, settings.port, settings.keepalive_s, clean_start=False, properties=properties
-        )
-    else:
-        client.connect_async(settings.host, settings.port, settings.keepalive_s)
+    """Start connecting in the background; a broker that is down is retried.
+
+    Raises
+    ------
+    ConfigError
+        When paho refuses the settings (its ValueError or TypeError, chained).
+    """
+    try:
+        if settings.protocol == "5":
+            properties = Properties(PacketTypes.CONNECT)
+            properties.SessionExpiryInterval = settings.session_expiry_s
+            properties.ReceiveMaximum = settings.receive_maximum
+            client.connect_async(
+                settings.host, settings.port, settings.keepalive_s, clean_start=False, properties=properties
+            )
+        else:
+            client.connect_async(settings.host, settings.port, settings.keepalive_s)
+    except (ValueError, TypeError) as exc:
+        raise ConfigError(f"mqtt {settings.address}: paho-mqtt refused the connection settings: {exc}") from exc

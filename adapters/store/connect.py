@@ -69,7 +69,7 @@ def resolve_url(url: str | None, path: str | os.PathLike[str] = "leadline.db") -
         url = f"sqlite:///{Path(url)}"
     try:
         parsed = make_url(url)
-    except ArgumentError as exc:
+    except (ArgumentError, ValueError) as exc:  # ValueError: a port that is not a number
         raise StoreError(f"cannot parse the store URL {url!r}: {exc}") from exc
     backend = parsed.get_backend_name()
     if backend == "sqlite":
