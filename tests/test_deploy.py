@@ -182,7 +182,8 @@ def test_mosquitto_config_has_auth_tls_persistence_and_a_sized_queue():
     assert options["cafile"] and options["certfile"] and options["keyfile"]
     assert options["persistence"] == "true"
     queued = int(options["max_queued_messages"])
-    # FIELD-NOTES.md (mosquitto #1593): the default of 1000 drops silently; 0 means unlimited
+    # mosquitto.conf(5), max_queued_messages: the default is 1000 per client and messages
+    # beyond the bound are dropped; 0 would remove the bound, which the manual advises against
     assert queued > 1000
     # the reasoning in the comment and the value agree: outage x rate x headroom <= the bound
     feeds = int(re.search(r"feeds leadline subscribes to\s+([\d,]+)", text).group(1).replace(",", ""))

@@ -1,8 +1,9 @@
 """Outages with a real broker: the broker stopped mid-stream, the subscriber killed.
 
 Both use Mosquitto with ``persistence true`` and a ``max_queued_messages``
-above the number of messages queued during the outage (Mosquitto's default
-of 1000 would drop the rest with only a log line; FIELD-NOTES.md).
+above the number of messages queued during the outage (the default is 1000
+per client, mosquitto.conf(5), ``max_queued_messages``; the broker drops the
+messages beyond it with only a log line).
 """
 
 from __future__ import annotations

@@ -1,11 +1,18 @@
 """Run lengths of the charts against published tables.
 
-Sources (see /work/shared/REFERENCES.md):
-- Shewhart +-3 sigma: ARL0 = 1 / 0.0026998 = 370.4 [exact formula].
-- Two-sided tabular CUSUM, k = 0.5, h = 4: Lucas & Crosier (1982), Table 1:
-  ARL 168 at shift 0, 8.38 at shift 1; with a head start of h/2: 149 and 5.29.
+Sources:
+- Shewhart +-3 sigma: ARL = 1 / p, p the probability of a point beyond the
+  limits (Montgomery, Introduction to Statistical Quality Control, 7th ed.,
+  Wiley 2013, the average run length of the Shewhart chart); for normal data
+  p = 2 (1 - Phi(3)) = 0.0026998, so ARL0 = 370.4 (exact).
+- Two-sided tabular CUSUM, k = 0.5, h = 4: Lucas & Crosier (1982), "Fast
+  initial response for CUSUM quality-control schemes", Technometrics 24(3),
+  199-205, Table 1: ARL 168 at shift 0, 8.38 at shift 1; with a head start of
+  h/2: 149 and 5.29.
 - EWMA with asymptotic limits, lambda = 0.5, L = 3.071: Lucas & Saccucci
-  (1990), Table 3: ARL 500 at shift 0, 17.5 at shift 1.
+  (1990), "Exponentially weighted moving average control schemes: properties
+  and enhancements", Technometrics 32(1), 1-12, Table 3: ARL 500 at shift 0,
+  17.5 at shift 1.
 
 The Monte Carlo checks run the same step functions as the rules (a separate
 test holds the rule classes to those functions step by step), many runs side
@@ -32,7 +39,8 @@ from leadline.detector.rules.thresholds import gaussian_abs_limit
 
 # --------------------------------------------------------------- computed ARLs
 def test_shewhart_arl_formula():
-    # exact formula: 1 / (2 (1 - Phi(3))) = 370.4; at shift 1: 43.9 (REFERENCES.md)
+    # Montgomery (2013), ARL = 1 / p: 1 / (2 (1 - Phi(3))) = 370.4; at a shift of 1 sigma
+    # p = Phi(-4) + 1 - Phi(2) = 0.02278, ARL 43.9 (exact formula)
     assert shewhart_arl(3.0) == pytest.approx(370.4, abs=0.05)
     assert shewhart_arl(3.0, 1.0) == pytest.approx(43.9, abs=0.05)
     assert gaussian_abs_limit(1 / 370.4) == pytest.approx(3.0, abs=1e-4)

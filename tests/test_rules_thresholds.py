@@ -41,7 +41,9 @@ def test_per_point_rate():
 
 
 def test_gaussian_limit_is_the_two_sided_normal_quantile():
-    assert gaussian_abs_limit(0.0026998) == pytest.approx(3.0, abs=1e-4)  # REFERENCES.md, Shewhart
+    # Montgomery, Introduction to Statistical Quality Control, 7th ed. (2013): 3-sigma limits
+    # leave p = 2 (1 - Phi(3)) = 0.0026998 of normal points outside (exact formula).
+    assert gaussian_abs_limit(0.0026998) == pytest.approx(3.0, abs=1e-4)
     assert gaussian_abs_limit(1e-5) == pytest.approx(norm.isf(5e-6))
 
 

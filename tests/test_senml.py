@@ -80,7 +80,8 @@ def test_rfc8428_5_1_2_base_time_relative_times_and_base_unit():
     assert {v.unit for v in currents} == {"A"}
     assert {v.name for v in currents} == {"urn:dev:ow:10e2073a0108006:current"}
     for k, v in enumerate(currents):
-        # 1276020071.001 ... 1276020076.001 (REFERENCES.md, RFC 8428 section 5.1.2)
+        # RFC 8428 section 5.1.2, second example: bt = 1.276020076001e+09 and t = -5 .. 0
+        # resolve to 1276020071.001 ... 1276020076.001
         assert close_in_time(v.timestamp, epoch(1276020071.001 + k))
 
 

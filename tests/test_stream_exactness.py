@@ -4,7 +4,8 @@ Reference: statsmodels SARIMAX ``filter()`` over the whole series with the
 fitted parameters; compared are ``forecasts_error``, ``forecasts_error_cov``
 and ``standardized_forecasts_error`` on every observed slot after the fit
 window, with single missing slots and a run of 10 missing slots in both the
-fit window and the streamed part. Tolerance: 1e-8 relative (issue 2); an
+fit window and the streamed part. Tolerance: 1e-8 relative (leadline's own
+exactness requirement, stated in DEVELOPERS.md); an
 innovation is compared relative to max(|v_t|, sqrt(F_t)) and z_t relative to
 max(|z_t|, 1), so that a near-zero innovation is judged on its own scale.
 statsmodels freezes F_t once its own filter converges, which is where the

@@ -37,8 +37,9 @@ Since a message is acknowledged only after the commit, the broker's window
 of unacknowledged messages bounds the flow: MQTT 5 clients announce it as
 Receive Maximum (``MqttSettings.receive_maximum``, default 1000); for 3.1.1
 clients Mosquitto's ``max_inflight_messages`` (default 20) applies and
-should be raised (for example to 1000). ``max_queued_messages`` must cover
-outage time x message rate (FIELD-NOTES.md). :meth:`~MqttSubscriber.poll`
+should be raised (for example to 1000). ``max_queued_messages`` (default
+1000 per client, mosquitto.conf(5)) must cover outage time x message rate, or
+the broker drops the rest. :meth:`~MqttSubscriber.poll`
 lingers ``batch_linger_s`` (default 20 ms) once a message is waiting, so
 that the service thread takes, and acknowledges, messages in batches.
 

@@ -14,7 +14,7 @@ Prints, for SQLite (a temp file) and PostgreSQL (a temp schema on
    ``start_at`` (what the query would cost without ``ix_events_hour``), and
    the query plan showing the index-only scan.
 
-Targets (issue 5): >= 20,000 events/s batched on SQLite; < 1 s for the
+Targets (leadline's own): >= 20,000 events/s batched on SQLite; < 1 s for the
 per-hour count on 1,000,000 events.
 """
 
