@@ -182,7 +182,7 @@ def test_mosquitto_config_has_auth_tls_persistence_and_a_sized_queue():
     assert options["cafile"] and options["certfile"] and options["keyfile"]
     assert options["persistence"] == "true"
     queued = int(options["max_queued_messages"])
-    # mosquitto.conf(5), max_queued_messages: the default is 1000 per client and messages
+    # mosquitto.conf(5) of Mosquitto 2.x, max_queued_messages: the default is 1000 per client and messages
     # beyond the bound are dropped; 0 would remove the bound, which the manual advises against
     assert queued > 1000
     # the reasoning in the comment and the value agree: outage x rate x headroom <= the bound
