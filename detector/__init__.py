@@ -27,14 +27,18 @@ Errors
     Every class of :mod:`leadline.detector.errors`, rooted at
     :class:`LeadlineError`.
 
-Names are imported from the modules that define them; those modules stay
-importable by their own paths too.
+Names are loaded from the modules that define them on first use (PEP 562
+module ``__getattr__``), so that importing one light module such as
+``leadline.detector.events`` or ``leadline.detector.errors`` does not load
+statsmodels, scipy and pandas; those modules stay importable by their own
+paths too. The error classes are loaded at once (they are light).
 """
 
 from __future__ import annotations
 
-from .bank import StreamBank
-from .engine import Engine, FeedSettings
+import importlib
+from typing import TYPE_CHECKING, Any
+
 from .errors import (
     ConfigError,
     DataError,
@@ -49,46 +53,86 @@ from .errors import (
     StateFormatError,
     StoreError,
 )
-from .events import CAUTION, AlarmEvent
-from .fitting import FittedModel, fit
-from .innovation import Innovation
-from .readings import Reading
-from .rules import (
-    AlarmLifecycle,
-    Assessment,
-    CusumRule,
-    CusumSignal,
-    EwmaChart,
-    EwmaRule,
-    FeedMonitor,
-    FlatlineRule,
-    LifecycleConfig,
-    MonitorConfig,
-    NoiseBurstRule,
-    RangeRule,
-    SpikeRule,
-    StaleRule,
-    TabularCusum,
-    budget_thresholds,
-    cusum_arl,
-    ewma_arl,
-    per_point_rate,
-    shewhart_arl,
-    sigma_thresholds,
-    validate_thresholds,
-)
-from .spec import ModelSpec
-from .stream import Stream
+
+if TYPE_CHECKING:  # for type checkers and editors; at run time see __getattr__
+    from .bank import StreamBank
+    from .engine import Engine, FeedSettings
+    from .events import AlarmEvent, CAUTION
+    from .fitting import fit, FittedModel
+    from .innovation import Innovation
+    from .readings import Reading
+    from .spec import ModelSpec
+    from .stream import Stream
+    from .rules import (
+        AlarmLifecycle,
+        Assessment,
+        CusumRule,
+        CusumSignal,
+        EwmaChart,
+        EwmaRule,
+        FeedMonitor,
+        FlatlineRule,
+        LifecycleConfig,
+        MonitorConfig,
+        NoiseBurstRule,
+        RangeRule,
+        SpikeRule,
+        StaleRule,
+        TabularCusum,
+        budget_thresholds,
+        cusum_arl,
+        ewma_arl,
+        per_point_rate,
+        shewhart_arl,
+        sigma_thresholds,
+        validate_thresholds,
+    )
+
+#: Where each lazily loaded public name is defined (relative to this package).
+_LAZY = {
+    "fit": ".fitting",
+    "FittedModel": ".fitting",
+    "ModelSpec": ".spec",
+    "Stream": ".stream",
+    "StreamBank": ".bank",
+    "Innovation": ".innovation",
+    "Engine": ".engine",
+    "FeedSettings": ".engine",
+    "Reading": ".readings",
+    "AlarmEvent": ".events",
+    "CAUTION": ".events",
+    "AlarmLifecycle": ".rules",
+    "Assessment": ".rules",
+    "CusumRule": ".rules",
+    "CusumSignal": ".rules",
+    "EwmaChart": ".rules",
+    "EwmaRule": ".rules",
+    "FeedMonitor": ".rules",
+    "FlatlineRule": ".rules",
+    "LifecycleConfig": ".rules",
+    "MonitorConfig": ".rules",
+    "NoiseBurstRule": ".rules",
+    "RangeRule": ".rules",
+    "SpikeRule": ".rules",
+    "StaleRule": ".rules",
+    "TabularCusum": ".rules",
+    "budget_thresholds": ".rules",
+    "cusum_arl": ".rules",
+    "ewma_arl": ".rules",
+    "per_point_rate": ".rules",
+    "shewhart_arl": ".rules",
+    "sigma_thresholds": ".rules",
+    "validate_thresholds": ".rules",
+}
 
 __all__ = [
-    # models and streaming
+    # models and streaming, the engine, its inputs and outputs
     "fit",
     "FittedModel",
     "ModelSpec",
     "Stream",
     "StreamBank",
     "Innovation",
-    # engine, inputs and outputs
     "Engine",
     "FeedSettings",
     "Reading",
@@ -118,10 +162,10 @@ __all__ = [
     "sigma_thresholds",
     "validate_thresholds",
     # errors (leadline.detector.errors)
-    "LeadlineError",
     "ConfigError",
     "DataError",
     "FitError",
+    "LeadlineError",
     "ParameterError",
     "RejectError",
     "RuleError",
@@ -131,3 +175,17 @@ __all__ = [
     "StateFormatError",
     "StoreError",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    """Load a public name from its defining module on first use, then keep it."""
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(importlib.import_module(module, __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

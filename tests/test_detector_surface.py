@@ -70,3 +70,28 @@ def test_importing_the_core_loads_no_io_library():
     forbidden = [m for m in loaded
                  if m.split(".")[0] in {"paho", "sqlalchemy", "psycopg"} or m.startswith("leadline.adapters")]
     assert forbidden == []
+
+
+def test_the_package_loads_its_heavy_modules_only_on_use():
+    # The store, the sources and the CLI's review commands import events, readings and
+    # errors; those must not bring statsmodels, scipy and pandas along (seconds of start-up,
+    # and a much larger heap for the garbage collector to walk).
+    code = (
+        "import json, sys\n"
+        "import leadline.detector, leadline.detector.events, leadline.detector.readings\n"
+        "print(json.dumps(sorted(sys.modules)))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True)
+    loaded = json.loads(done.stdout)
+    assert "leadline.detector.events" in loaded
+    assert [m for m in loaded if m.split(".")[0] in {"statsmodels", "scipy", "pandas"}] == []
+
+
+def test_unknown_names_are_attribute_errors_and_dir_lists_the_surface():
+    try:
+        detector.NoSuchName  # noqa: B018
+    except AttributeError as exc:
+        assert "NoSuchName" in str(exc)
+    else:
+        raise AssertionError("an unknown name must raise AttributeError")
+    assert set(detector.__all__) <= set(dir(detector))
