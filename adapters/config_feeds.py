@@ -15,6 +15,7 @@ at load time, and for the exact set of layers of a feed in
 from __future__ import annotations
 
 import copy
+import dataclasses
 import fnmatch
 import inspect
 from dataclasses import dataclass
@@ -22,7 +23,8 @@ from datetime import date, datetime
 from typing import Any, Iterable, Mapping
 
 from leadline.detector.errors import SpecError
-from leadline.detector.rules.monitor import INNOVATION_RULES
+from leadline.detector.feed_settings import FeedSettings
+from leadline.detector.rules.monitor import INNOVATION_RULES, MonitorConfig
 from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
 from leadline.detector.seasonality import SeasonalPeriod
 from leadline.detector.spec import ModelSpec
@@ -49,25 +51,38 @@ MIN_TRAIN_POINTS = 50
 #: UTC offsets in use range from -12 h to +14 h (IANA tz database).
 MAX_UTC_OFFSET_S = 14 * 3600.0
 
-#: Resolved option -> its built-in default.
+
+def _default(cls: type, name: str) -> Any:
+    """The default of dataclass field ``name`` of ``cls``: the engine's defaults are written there only."""
+    for f in dataclasses.fields(cls):
+        if f.name == name:
+            if f.default is dataclasses.MISSING:
+                raise TypeError(f"{cls.__name__}.{name} has no plain default")
+            return f.default
+    raise TypeError(f"{cls.__name__} has no field {name!r}")
+
+
+#: Resolved option -> its built-in default. Options the engine has a setting
+#: for take the default of that setting (:class:`~leadline.detector.feed_settings.FeedSettings`,
+#: or its ``monitor``, :class:`~leadline.detector.rules.monitor.MonitorConfig`).
 BUILTIN_DEFAULTS: dict[str, Any] = {
-    "model": "auto",
+    "model": _default(FeedSettings, "spec"),
     "seasonality": [],
     "weekend": False,
     "holidays": [],
     "utc_offset_s": 0.0,
-    "interval_s": None,
-    "train_points": 2000,
-    "train_span_s": 14 * 86400.0,
-    "threshold_mode": "budget",
-    "false_alarms_per_week": 1.0,
+    "interval_s": _default(FeedSettings, "interval_s"),
+    "train_points": _default(FeedSettings, "train_points"),
+    "train_span_s": _default(FeedSettings, "train_span_s"),
+    "threshold_mode": _default(FeedSettings, "threshold_mode"),
+    "false_alarms_per_week": _default(FeedSettings, "false_alarms_per_week"),
     "limits": {},
-    "rules": None,
-    "range_low": None,
-    "range_high": None,
-    "counter": False,
-    "register_size": None,
-    "stale_intervals": 5.0,
+    "rules": _default(MonitorConfig, "rules"),
+    "range_low": _default(MonitorConfig, "range_low"),
+    "range_high": _default(MonitorConfig, "range_high"),
+    "counter": _default(FeedSettings, "counter"),
+    "register_size": _default(FeedSettings, "register_size"),
+    "stale_intervals": _default(MonitorConfig, "stale_missing_intervals"),
 }
 
 #: TOML key -> resolved key (where they differ, the unit is added).

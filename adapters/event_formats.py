@@ -1,4 +1,4 @@
-"""Stored events written as a table, CSV or JSON (``leadline events``, ``leadline export``).
+"""Events written as a table, CSV or JSON (``leadline events``, ``leadline export``, ``leadline score``).
 
 Every format ends with the caution (:data:`~leadline.detector.events.CAUTION`):
 
@@ -9,7 +9,9 @@ Every format ends with the caution (:data:`~leadline.detector.events.CAUTION`):
   start a line with ``#``: the first column is the numeric event id);
 * **JSON**: one object ``{"window": ..., "filters": ..., "count": n,
   "events": [...], "caution": "..."}``, the caution as its last member and
-  in each event.
+  in each event. Events that were never stored (``leadline score
+  --events-out``) are written the same way, without ``window`` and
+  ``filters`` and without the store's fields.
 
 An event's fields in CSV and JSON carry the names of the alarm payload
 published over MQTT (:func:`leadline.adapters.sources.alarm_publisher.event_payload`),
@@ -25,7 +27,7 @@ import math
 from datetime import tzinfo
 from typing import Any, Iterable, Mapping, Sequence, TextIO
 
-from leadline.detector.events import CAUTION
+from leadline.detector.events import CAUTION, AlarmEvent
 
 from .review import iso, print_caution, show_time
 from .store.records import Note, StoredEvent
@@ -62,11 +64,9 @@ def note_record(note: Note) -> dict[str, Any]:
     return out
 
 
-def event_record(stored: StoredEvent) -> dict[str, Any]:
-    """One event as a JSON-ready dict."""
-    ev = stored.event
+def alarm_event_record(ev: AlarmEvent) -> dict[str, Any]:
+    """One engine event (not yet stored) as a JSON-ready dict, the caution last."""
     return {
-        "id": stored.id,
         "feed_id": ev.feed_id,
         "rule": ev.rule,
         "severity": ev.severity,
@@ -81,11 +81,22 @@ def event_record(stored: StoredEvent) -> dict[str, Any]:
         "parameters": _clean(ev.parameters),
         "model_version": ev.model_version,
         "detail": ev.detail,
+        "caution": ev.caution,
+    }
+
+
+def event_record(stored: StoredEvent) -> dict[str, Any]:
+    """One event as a JSON-ready dict."""
+    record = alarm_event_record(stored.event)
+    caution = record.pop("caution")
+    return {
+        "id": stored.id,
+        **record,
         "acknowledged": stored.acknowledged,
         "notes": [note_record(n) for n in stored.notes],
         "created_at": iso(stored.created_at),
         "updated_at": iso(stored.updated_at),
-        "caution": ev.caution,
+        "caution": caution,
     }
 
 
@@ -129,6 +140,15 @@ def write_json(events: Iterable[StoredEvent], out: TextIO, *, window: Mapping[st
     document = {"window": dict(window), "filters": dict(filters), "count": len(records), "events": records,
                 "caution": CAUTION}
     json.dump(document, out, indent=2, ensure_ascii=False, allow_nan=False)
+    out.write("\n")
+    return len(records)
+
+
+def write_alarm_events_json(events: Iterable[AlarmEvent], out: TextIO) -> int:
+    """Engine events that were never stored (``leadline score``), in the JSON form of :func:`write_json`."""
+    records = [alarm_event_record(e) for e in events]
+    json.dump({"count": len(records), "events": records, "caution": CAUTION}, out, indent=2, ensure_ascii=False,
+              allow_nan=False)
     out.write("\n")
     return len(records)
 

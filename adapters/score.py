@@ -3,11 +3,9 @@
 from __future__ import annotations
 
 import csv
-import json
 import math
 import sys
-from dataclasses import asdict
-from datetime import date, datetime, timezone
+from datetime import date
 from typing import TextIO
 
 import numpy as np
@@ -15,17 +13,19 @@ import numpy as np
 from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import DataError, SpecError
 from leadline.detector.events import CAUTION, AlarmEvent
+from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.fitting import fit
 from leadline.detector.grid import to_grid
+from leadline.detector.refit import thresholds_from_config
 from leadline.detector.rules.monitor import FeedMonitor, MonitorConfig
-from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
+from .event_formats import write_alarm_events_json
 from .series_csv import read_series_csv
+from .sources.timeparse import epoch_seconds_to_utc
 
 COLUMNS = ("timestamp", "value", "forecast", "error", "variance", "z", "lower", "upper")
-WEEK_S = 7 * 86400.0
 
 
 def train_slots(train: str, interval_s: float) -> int:
@@ -70,7 +70,7 @@ def signed_duration_s(text: str) -> float:
 
 
 def _iso(epoch_s: float) -> str:
-    return datetime.fromtimestamp(epoch_s, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+    return epoch_seconds_to_utc(epoch_s).isoformat().replace("+00:00", "Z")
 
 
 def _fmt(x: float) -> str:
@@ -107,7 +107,7 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
     writer.writerow(COLUMNS + tuple(f"state_{rule}" for rule in rules))
     events: dict[tuple, AlarmEvent] = {}
     for t in range(n_train, grid.values.size):
-        when = datetime.fromtimestamp(epoch[t], tz=timezone.utc)
+        when = epoch_seconds_to_utc(epoch[t])
         for event in monitor.process(grid.values[t], when):
             events[event.key] = event  # the clearing copy replaces the onset copy
         inn = monitor.last_innovation
@@ -121,29 +121,24 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
 
 
 def build_monitor(args, model, train_values: np.ndarray, interval_s: float, stream) -> FeedMonitor:
-    """The alarm rules, with limits in ``sigma`` mode or from a false-alarm budget."""
-    if args.threshold_mode == "budget":
-        thresholds = budget_thresholds(model.standardized_residuals, interval_s=interval_s,
-                                       false_alarms=args.false_alarms_per_week, per_s=WEEK_S,
-                                       values=train_values[np.isfinite(train_values)])
-    else:
-        thresholds = sigma_thresholds()
+    """The alarm rules, with limits in ``sigma`` mode or from a false-alarm budget.
+
+    The limits come from the engine's own code
+    (:func:`~leadline.detector.refit.thresholds_from_config`), as for a feed of
+    the service with the same mode and budget.
+    """
+    thresholds = thresholds_from_config(model, train_values, interval_s,
+                                        {"mode": args.threshold_mode,
+                                         "false_alarms_per_week": float(args.false_alarms_per_week)})
     config = MonitorConfig(thresholds=thresholds, range_low=args.range_low, range_high=args.range_high)
     return FeedMonitor(args.feed, stream, config)
 
 
 def write_events(path: str, events: list[AlarmEvent]) -> None:
-    """The events as a JSON document, each with its caution note."""
-    rows = []
-    for ev in sorted(events, key=lambda e: (e.start, e.rule)):
-        row = asdict(ev)
-        row["start"] = ev.start.isoformat()
-        row["end"] = ev.end.isoformat() if ev.end else None
-        rows.append({k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in row.items()})
+    """The events as JSON in the form of ``leadline events`` (:mod:`.event_formats`), each with its caution."""
     try:
         with open(path, "w", encoding="utf-8") as handle:
-            json.dump({"caution": CAUTION, "events": rows}, handle, indent=2)
-            handle.write("\n")
+            write_alarm_events_json(sorted(events, key=lambda e: (e.start, e.rule)), handle)
     except OSError as exc:
         raise DataError(f"--events-out {path}: cannot write: {exc.strerror}") from exc
 
@@ -156,7 +151,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("input", nargs="?", help="CSV with a header timestamp,value (or timestamp,series,value); "
                                             "default: the bundled example")
     p.add_argument("--series", help="which series to score when the CSV has a 'series' column")
-    p.add_argument("--train", default="2000", help="points to fit on, or a span such as 14d (default 2000)")
+    p.add_argument("--train", default=str(FeedSettings.train_points),
+                   help=f"points to fit on, or a span such as 14d (default {FeedSettings.train_points})")
     p.add_argument("--order", default="auto", help="p,d,q or auto (default auto)")
     p.add_argument("--seasonal", help="P,D,Q,s for a seasonal ARIMA with a short period (s <= 24)")
     p.add_argument("--trend", choices=["n", "c", "t", "ct"], help="trend (default: constant unless differenced)")
@@ -166,14 +162,16 @@ def add_parser(subparsers) -> None:
     p.add_argument("--weekend", action="store_true", help="add a weekend regressor")
     p.add_argument("--holidays", help="comma-separated ISO dates to flag as holidays")
     p.add_argument("--utc-offset", help="local time minus UTC for the calendar terms, e.g. 1h or -5h")
-    p.add_argument("--level", type=float, default=0.95, help="forecast interval coverage (default 0.95)")
+    p.add_argument("--level", type=float, default=FeedSettings.level,
+                   help=f"forecast interval coverage (default {FeedSettings.level:g})")
     p.add_argument("--out", help="write the scores here instead of standard output")
     p.add_argument("--events-out", help="write the alarm events here as JSON")
     p.add_argument("--feed", default="feed", help="feed id used in the events (default 'feed')")
     p.add_argument("--threshold-mode", choices=["sigma", "budget"], default="budget",
                    help="fixed sigma limits, or limits from a false-alarm budget (default)")
-    p.add_argument("--false-alarms-per-week", type=float, default=1.0,
-                   help="the tolerable false-alarm rate in budget mode (default 1)")
+    p.add_argument("--false-alarms-per-week", type=float, default=FeedSettings.false_alarms_per_week,
+                   help="the tolerable false-alarm rate in budget mode "
+                        f"(default {FeedSettings.false_alarms_per_week:g})")
     p.add_argument("--range-low", type=float, help="lowest physically possible value (engineering range)")
     p.add_argument("--range-high", type=float, help="highest physically possible value")
     p.set_defaults(handler=_handle)

@@ -14,28 +14,30 @@ from __future__ import annotations
 
 import csv
 import math
-from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
 
-from leadline.detector.errors import DataError
+from leadline.detector.errors import DataError, RejectError
+
+from .sources.timeparse import TimeParser
+
+
+#: The sources' parsers (:mod:`.sources.timeparse`): epoch seconds, and ISO 8601 with UTC for a time without offset.
+_EPOCH_S = TimeParser("epoch_s")
+_ISO_UTC = TimeParser("iso8601", time_zone="UTC")
 
 
 def parse_timestamp(text: str) -> float:
     """Epoch seconds from ISO 8601 text or a number of epoch seconds."""
     text = text.strip()
-    try:
-        return float(text)
-    except ValueError:
-        pass
-    try:
-        stamp = datetime.fromisoformat(text)
-    except ValueError as exc:
-        raise ValueError(f"time {text!r} is neither ISO 8601 nor epoch seconds") from exc
-    if stamp.tzinfo is None:
-        stamp = stamp.replace(tzinfo=timezone.utc)
-    return stamp.timestamp()
+    for parser in (_EPOCH_S, _ISO_UTC):
+        try:
+            stamp, _ = parser(text)
+        except RejectError:
+            continue
+        return stamp.timestamp()
+    raise ValueError(f"time {text!r} is neither ISO 8601 nor epoch seconds")
 
 
 def read_series_csv(path: str | Path, series: str | None = None) -> tuple[np.ndarray, np.ndarray]:

@@ -6,7 +6,11 @@ import re
 
 from .errors import SpecError
 
-_UNITS_S = {"s": 1.0, "sec": 1.0, "min": 60.0, "m": 60.0, "h": 3600.0, "d": 86400.0, "w": 604800.0}
+#: Seconds in a day and in a week (the unit of the false-alarm budget).
+DAY_S = 86400.0
+WEEK_S = 7 * DAY_S
+
+_UNITS_S = {"s": 1.0, "sec": 1.0, "min": 60.0, "m": 60.0, "h": 3600.0, "d": DAY_S, "w": WEEK_S}
 _PATTERN = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([a-z]+)\s*$")
 
 

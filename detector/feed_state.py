@@ -7,6 +7,14 @@ counter state, the model's facts and schedule, the alarm limits, the
 refit window, and the running state of every alarm rule (CUSUM sums, the
 noise-burst window, open episodes, the re-anchoring history).
 
+:func:`feed_checkpoint` saves a watched feed whole (section "The feed" below);
+:func:`feed_from_checkpoint` rebuilds it. After a restore the feed scores the
+next slot exactly as it would have without the restart. A refit that was in
+flight is requested again at the next slot. When the rule settings changed
+in between, the rules restart, and the episodes that were open are closed,
+with a note in their detail. A feed that is still learning has no
+checkpoint; after a restart it learns again.
+
 Layout, like the stream's: 8-byte magic ``LLFEED01``, uint16 format version,
 uint32 header length, a UTF-8 JSON header, then an ``.npz`` archive of the
 arrays, loaded with ``allow_pickle=False``. Nothing is unpickled: loading
@@ -35,14 +43,24 @@ import json
 import struct
 import zipfile
 from collections import deque
+from collections.abc import Callable
 from datetime import datetime, timezone
 from typing import Any
 
 import numpy as np
 
-from .errors import StateFormatError
+from .counters import CounterDeltas
+from .engine_output import EngineOutput, StateChange
+from .errors import ConfigError, DataError, StateFormatError
 from .events import AlarmEvent
+from .grid import GridCounts, GridCursor
 from .innovation import Innovation
+from .refit import RingBuffer
+from .rules.monitor import FeedMonitor, MonitorConfig
+from .rules.thresholds import sigma_thresholds
+from .seasonality import CalendarTerms
+from .spec import ModelSpec
+from .stream import Stream
 from .rules.cusum import CusumSignal
 from .rules.level_shift import LevelShiftEstimate
 from .rules.lifecycle import Assessment, LifecycleConfig
@@ -261,3 +279,189 @@ def saved_open_events(saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> l
         if event is not None:
             out.append(decoder.value(event))
     return out
+
+
+# ----------------------------------------------------------------- the feed
+def _fingerprint(config: MonitorConfig) -> str:
+    """The rules' configuration as text: rule states are restored only into an equal one."""
+    return json.dumps(dataclasses.asdict(config), sort_keys=True, default=repr)
+
+
+def feed_checkpoint(feed: Any) -> bytes:
+    """A watched feed's whole state as checkpoint bytes (see the section above).
+
+    Parameters
+    ----------
+    feed : FeedLifecycle
+        A feed of :mod:`.feed` in state ``watching``.
+
+    Raises
+    ------
+    DataError
+        The feed has no model yet.
+    """
+    if feed.state != "watching":
+        raise DataError(f"feed {feed.feed_id!r} is {feed.state} and has no model to checkpoint yet")
+    monitor_state, arrays = snapshot_monitor(feed.monitor)
+    c = feed.cursor
+    in_flight = None
+    if feed.pending is not None:
+        in_flight = [feed.pending.request.reason, feed.pending.full_selection]
+    elif feed.refit_due is not None:
+        in_flight = list(feed.refit_due)
+    header = {
+        "feed_id": feed.feed_id,
+        "model_version": feed.model_version,
+        "model_label": feed.model_label,
+        "model_reason": feed.model_reason,
+        "fitted_at": encode_time(feed.fitted_at),
+        "fitted_spec": feed.fitted_spec.to_dict(),
+        "fitted_calendar": None if feed.fitted_calendar is None else feed.fitted_calendar.to_dict(),
+        "fit_problems": feed.fit_problems,
+        "next_refit_epoch_s": feed.next_refit_epoch_s,
+        "cursor": {"origin_epoch_s": c.origin_epoch_s, "interval_s": c.interval_s, "next_slot": c.next_slot,
+                   "counts": c.counts.as_dict()},
+        "next_slot": feed.next_slot,
+        "counter": None if feed.counter is None else feed.counter.to_dict(),
+        "thresholds": feed.thresholds,
+        "thresholds_config": feed.thresholds_config,
+        "monitor_fingerprint": _fingerprint(feed.monitor.config),
+        "monitor": monitor_state,
+        "diagnostics": {"since_check": feed.diagnostics.since_check, "last": feed.diagnostics.last},
+        "last_diag_refit_slot": feed.last_diag_refit_slot,
+        "refit_in_flight": in_flight,
+        "last_refit_error": feed.last_refit_error,
+        "request_seq": feed.request_seq,
+        "stats": {"readings": feed.readings, "rejects": feed.rejects, "last_time": encode_time(feed.last_time),
+                  "last_value": feed.last_value, "last_seen": encode_time(feed.last_seen),
+                  "meter_resets": feed.meter_resets},
+    }
+    arrays["stream"] = np.frombuffer(feed.monitor.stream.to_bytes(), dtype=np.uint8)
+    arrays["history"] = feed.history.to_array()
+    arrays["diagnostics_z"] = np.array(feed.diagnostics.z, dtype=float)
+    return pack(header, arrays)
+
+
+def feed_from_checkpoint(new_feed: Callable[[str, Any], Any], feed_id: str, settings: Any, data: bytes,
+                         model_version: int) -> tuple[Any, EngineOutput]:
+    """Rebuild a watched feed from :func:`feed_checkpoint` bytes.
+
+    Parameters
+    ----------
+    new_feed : callable
+        ``new_feed(feed_id, settings)`` builds a fresh feed
+        (:class:`~leadline.detector.feed.FeedLifecycle`), which is then
+        filled from the checkpoint.
+    feed_id : str
+    settings : FeedSettings
+        The feed's current settings.
+    data : bytes
+    model_version : int
+        The model version the checkpoint must hold.
+
+    Returns
+    -------
+    feed, EngineOutput
+        The feed, watching, and its state change (plus the closing of
+        episodes whose rule settings changed).
+
+    Raises
+    ------
+    StateFormatError
+        Bytes that are not a checkpoint of this feed and version, or a
+        grid or counter setting that changed since (the feed must learn again).
+    """
+    header, arrays = unpack(data)
+    try:
+        return _feed_from_parts(new_feed, feed_id, settings, header, arrays, model_version)
+    except (KeyError, TypeError, ValueError) as exc:
+        if isinstance(exc, (StateFormatError, ConfigError)):
+            raise
+        raise StateFormatError(f"feed {feed_id!r}: checkpoint is corrupt: {exc!r}") from exc
+
+
+def _feed_from_parts(new_feed: Callable[[str, Any], Any], feed_id: str, settings: Any, header: dict[str, Any],
+                     arrays: dict[str, np.ndarray], model_version: int) -> tuple[Any, EngineOutput]:
+    if header["feed_id"] != feed_id:
+        raise StateFormatError(f"checkpoint is of feed {header['feed_id']!r}, not {feed_id!r}")
+    stream = Stream.from_bytes(arrays["stream"].tobytes())
+    if stream.model_version != model_version or header["model_version"] != model_version:
+        raise StateFormatError(f"feed {feed_id!r}: checkpoint holds model version {stream.model_version}, "
+                               f"not {model_version}")
+    saved_cursor = header["cursor"]
+    if settings.interval_s is not None and settings.interval_s != saved_cursor["interval_s"]:
+        raise StateFormatError(f"feed {feed_id!r}: interval_s is now {settings.interval_s:g} s, the checkpoint's "
+                               f"grid has {saved_cursor['interval_s']:g} s; the feed must learn again")
+    if settings.counter != (header["counter"] is not None):
+        raise StateFormatError(f"feed {feed_id!r}: counter is now {settings.counter}, the checkpoint was "
+                               f"taken with counter {header['counter'] is not None}; the feed must learn again")
+    feed = new_feed(feed_id, settings)
+    out = EngineOutput()
+    cursor = GridCursor(saved_cursor["origin_epoch_s"], saved_cursor["interval_s"], settings.grid_tolerance,
+                        saved_cursor["next_slot"])
+    cursor.counts = GridCounts(**saved_cursor["counts"])
+    feed.cursor = cursor
+    feed.next_slot = int(header["next_slot"])
+    if header["counter"] is not None:  # the saved baseline, the current register settings
+        feed.counter = CounterDeltas.from_dict(header["counter"], register_size=settings.register_size,
+                                               reset_drop_fraction=settings.reset_drop_fraction)
+    feed.model_version = model_version
+    feed.model_label = header["model_label"]
+    feed.model_reason = header["model_reason"]
+    feed.fitted_at = decode_time(header["fitted_at"])
+    feed.fitted_spec = ModelSpec.from_dict(header["fitted_spec"])
+    feed.fitted_calendar = (None if header["fitted_calendar"] is None
+                            else CalendarTerms.from_dict(header["fitted_calendar"]))
+    feed.fit_problems = list(header["fit_problems"])
+    feed.next_refit_epoch_s = header["next_refit_epoch_s"]
+    if settings.refit_every_s is None:
+        feed.next_refit_epoch_s = None
+    elif feed.next_refit_epoch_s is None:
+        feed.next_refit_epoch_s = feed.fitted_at.timestamp() + settings.refit_every_s
+    thresholds = header["thresholds"]
+    feed.thresholds_config = header["thresholds_config"]
+    current = json.loads(json.dumps(settings.thresholds_config(cursor.interval_s)))  # as saved
+    if current != feed.thresholds_config:
+        if settings.threshold_mode == "sigma":
+            thresholds = sigma_thresholds(**current["sigma_limits"])
+            feed.thresholds_config = current
+        else:  # budget limits need the fit's residuals: a refit sets them
+            feed.refit_due = ("threshold settings changed", False)
+    feed.thresholds = thresholds
+    stats = header["stats"]
+    feed.readings = int(stats["readings"])
+    feed.rejects.update(stats["rejects"])
+    feed.last_time = decode_time(stats["last_time"])
+    feed.last_value = float(stats["last_value"])
+    feed.last_seen = decode_time(stats["last_seen"])
+    feed.meter_resets = int(stats["meter_resets"])
+    config = feed.monitor_config(thresholds)
+    monitor = FeedMonitor(feed_id, stream, config, last_seen=feed.last_seen)
+    if _fingerprint(config) == header["monitor_fingerprint"]:
+        restore_monitor(monitor, header["monitor"], arrays)
+        resumed = "rule states restored"
+    else:
+        when = feed.last_time or feed.at_last_slot()
+        for event in saved_open_events(header["monitor"], arrays):
+            out.events.append(event.cleared(max(when, event.start),
+                                            detail=f"{event.detail}; closed at restart: the feed's rule "
+                                                   "settings changed"))
+        resumed = "rule settings changed, rule states restarted"
+    feed.monitor = monitor
+    feed.history = RingBuffer(settings.refit_window_points, arrays["history"])
+    feed.diagnostics.z.extend(arrays["diagnostics_z"].tolist())
+    feed.diagnostics.since_check = int(header["diagnostics"]["since_check"])
+    feed.diagnostics.last = header["diagnostics"]["last"]
+    feed.last_diag_refit_slot = header["last_diag_refit_slot"]
+    feed.last_refit_error = header["last_refit_error"]
+    feed.request_seq = int(header["request_seq"])
+    if header["refit_in_flight"] is not None and feed.refit_due is None:
+        reason, full = header["refit_in_flight"]
+        again = " (requested again after a restart)"
+        feed.refit_due = (reason if reason.endswith(again) else reason + again, bool(full))
+    feed.state = "watching"
+    out.state_changes.append(StateChange(
+        feed_id, "new", "watching", feed.last_time or feed.at_last_slot(),
+        f"resumed from checkpoint at slot {feed.next_slot} with model version {model_version} "
+        f"({feed.model_label}); no learning phase; {resumed}"))
+    return feed, out

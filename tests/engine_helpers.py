@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from leadline.detector.engine import FeedSettings
+from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.spec import ModelSpec
 
 PHI = 0.6

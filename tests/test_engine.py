@@ -18,11 +18,11 @@ from datetime import datetime, timedelta, timezone
 import numpy as np
 import pytest
 
-from leadline.detector.engine import (Engine, EngineOutput, RefitRequest, StateChange, run_refit,
-                                      run_refit_with_thresholds, thresholds_for)
+from leadline.detector.engine import Engine, EngineOutput, StateChange
 from leadline.detector.errors import ConfigError, DataError
 from leadline.detector.events import CAUTION
 from leadline.detector.readings import Reading
+from leadline.detector.refit import RefitRequest, run_refit, run_refit_with_thresholds, thresholds_for
 from leadline.detector.rules import FeedMonitor, MonitorConfig
 from leadline.detector.spec import ModelSpec
 from engine_helpers import PHI, ar1, settings

@@ -20,11 +20,12 @@ from scipy import integrate
 from scipy.stats import norm
 
 from leadline.detector.counters import CounterDeltas
-from leadline.detector.engine import (Engine, EngineOutput, RefitRequest, RingBuffer,
-                                      clipped_square_mean, ljung_box_pvalue, run_refit)
+from leadline.detector.diagnostics import clipped_square_mean, ljung_box_pvalue
+from leadline.detector.engine import Engine, EngineOutput
 from leadline.detector.errors import DataError, StateFormatError
 from leadline.detector.events import CAUTION
 from leadline.detector.readings import Reading
+from leadline.detector.refit import RefitRequest, RingBuffer, run_refit
 from leadline.detector.rules import MonitorConfig
 from engine_helpers import ar1, settings
 

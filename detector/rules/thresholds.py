@@ -67,14 +67,13 @@ from typing import Any
 import numpy as np
 from scipy.stats import norm
 
+from ..durations import DAY_S, WEEK_S  # noqa: F401 (DAY_S re-exported: one definition, in durations)
 from ..errors import RuleError
 from .arl import cusum_h_for_arl, ewma_limit_for_arl
 from .flatline import estimate_resolution
 
 FORMAT = "leadline.thresholds"
 FORMAT_VERSION = 1
-WEEK_S = 7 * 24 * 3600.0
-DAY_S = 24 * 3600.0
 
 #: How the per-reading budget is shared by default (common practice here:
 #: most to the two rules that see most faults).
