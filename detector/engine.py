@@ -116,7 +116,6 @@ limits are common practice, not published values.
 
 from __future__ import annotations
 
-import dataclasses
 import inspect
 import json
 import math
@@ -139,6 +138,7 @@ from .grid import GridCounts, GridCursor, infer_interval_s
 from .innovation import Innovation
 from .readings import Reading
 from .rules import FeedMonitor, MonitorConfig, budget_thresholds, per_point_rate, sigma_thresholds
+from .rules.limits import AlarmLimits
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 from .stream import Stream
@@ -423,7 +423,7 @@ def run_refit(request: RefitRequest) -> FittedModel:
                seasonal_period=request.seasonal_period)
 
 
-def thresholds_for(fitted: FittedModel, request: RefitRequest) -> dict[str, Any]:
+def thresholds_for(fitted: FittedModel, request: RefitRequest) -> AlarmLimits:
     """The alarm limits for a fit: budget mode from its standardized residuals, or sigma mode."""
     config = request.thresholds_config
     if config.get("mode") == "sigma":
@@ -437,12 +437,13 @@ def thresholds_for(fitted: FittedModel, request: RefitRequest) -> dict[str, Any]
 def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[str, Any]]:
     """:func:`run_refit` and :func:`thresholds_for` in one call, so both run in the worker.
 
-    Pass the limits to :meth:`Engine.install_model` (``thresholds=``); budget
-    limits take a few tenths of a second per feed, which the service loop
-    should not spend.
+    The limits come in their JSON form (as stored with the model). Pass
+    them to :meth:`Engine.install_model` (``thresholds=``); budget limits
+    take a few tenths of a second per feed, which the service loop should
+    not spend.
     """
     fitted = run_refit(request)
-    return fitted, thresholds_for(fitted, request)
+    return fitted, thresholds_for(fitted, request).to_json()
 
 
 # ================================================================ diagnostics
@@ -548,7 +549,7 @@ def _utc(epoch_s: float) -> datetime:
 
 
 def _fingerprint(config: MonitorConfig) -> str:
-    return json.dumps(dataclasses.asdict(config), sort_keys=True, default=repr)
+    return config.fingerprint()
 
 
 def _grid_origin(epochs: np.ndarray, interval_s: float) -> float:
@@ -594,7 +595,7 @@ class _Feed:
         self.history = RingBuffer(settings.refit_window_points)
         self.pending: _Pending | None = None
         self.monitor: FeedMonitor | None = None
-        self.thresholds: dict[str, Any] | None = None
+        self.thresholds: AlarmLimits | None = None
         self.thresholds_config: dict[str, Any] | None = None
         self.model_version: int | None = None
         self.model_label: str | None = None
@@ -624,7 +625,7 @@ class _Feed:
         m = self.settings.monitor
         return m.range_low is not None or m.range_high is not None
 
-    def _monitor_config(self, thresholds: dict[str, Any]) -> MonitorConfig:
+    def _monitor_config(self, thresholds: AlarmLimits) -> MonitorConfig:
         return replace(self.settings.monitor, thresholds=thresholds, interval_s=self.cursor.interval_s)
 
     def _at_last_slot(self) -> datetime:
@@ -732,17 +733,16 @@ class _Feed:
             self._watch(value, ts, slot, out)
 
     def _watch(self, value: float, ts: datetime, slot: int, out: EngineOutput) -> None:
-        monitor = self.monitor
-        reanchors = monitor.reanchors
-        out.events.extend(monitor.process(value, ts))
-        inn = monitor.last_innovation
+        step = self.monitor.process(value, ts)
+        out.events.extend(step.events)
+        inn = step.innovation
         out.innovations.append((self.feed_id, inn))
         # the refit window holds readings on the current model's base level (see _request_refit)
-        model_value = inn.value - monitor.stream.level_offset if inn.absorbed else math.nan
+        model_value = inn.value - step.level_offset if inn.absorbed else math.nan
         self.history.append(model_value)
         if self.pending is not None:
             self.pending.buffer.append(model_value)
-        if monitor.reanchors != reanchors or any(life.is_active for life in monitor.lifecycles.values()):
+        if step.reanchored or step.episodes_open:
             self.diagnostics.reset()  # a fault the rules already report is not a misfit of the model
         else:
             self.diagnostics.add(inn)
@@ -840,7 +840,7 @@ class _Feed:
         out.refit_requests.append(request)
 
     def install(self, fitted: FittedModel, model_version: int, reason: str,
-                thresholds: dict[str, Any] | None, request: RefitRequest | None) -> EngineOutput:
+                thresholds: AlarmLimits | dict[str, Any] | None, request: RefitRequest | None) -> EngineOutput:
         p = self.pending
         if p is None:
             raise DataError(f"feed {self.feed_id!r}: no refit is pending; install_model answers a RefitRequest")
@@ -854,7 +854,7 @@ class _Feed:
                             f"the pending request has {p.request.values.size}")
         if isinstance(model_version, bool) or not isinstance(model_version, int):
             raise DataError(f"feed {self.feed_id!r}: model_version must be an integer, got {model_version!r}")
-        th = thresholds if thresholds is not None else thresholds_for(fitted, p.request)
+        th = AlarmLimits.of(thresholds) if thresholds is not None else thresholds_for(fitted, p.request)
         stream = fitted.stream(level=self.settings.level, model_version=model_version)
         config = self._monitor_config(th)
         out = EngineOutput()
@@ -893,18 +893,9 @@ class _Feed:
         if shift != 0.0:
             stream.shift_level(shift)
         self.history.add(base)
-        monitor = FeedMonitor(self.feed_id, stream, config,
-                              last_seen=old.stale.last_seen if old.stale is not None else self.last_seen)
+        monitor = FeedMonitor(self.feed_id, stream, config, last_seen=self.last_seen)
         when = self._at_last_slot()
-        for name, life in old.lifecycles.items():
-            if not life.is_active:
-                continue
-            if name in monitor.lifecycles:
-                life.parameters = monitor.lifecycles[name].parameters
-                monitor.lifecycles[name] = life
-            else:
-                out.events.append(life.close(when, detail=f"{life.current.detail}; closed: model version "
-                                                          f"{model_version} has no {name} rule"))
+        out.events.extend(monitor.carry_over(old, when))
         self.monitor = monitor
         out.state_changes.append(StateChange(
             self.feed_id, "watching", "watching", when,
@@ -971,7 +962,7 @@ class _Feed:
             else self.pending.request.reason,
             "next_refit_at": None if self.next_refit_epoch_s is None else _utc(self.next_refit_epoch_s).isoformat(),
             "last_refit_error": self.last_refit_error,
-            "threshold_mode": None if self.thresholds is None else self.thresholds.get("mode"),
+            "threshold_mode": None if self.thresholds is None else self.thresholds.mode,
             "diagnostics": self.diagnostics.last,
         }
         if self.state == "learning":
@@ -1007,7 +998,7 @@ class _Feed:
                        "counts": c.counts.as_dict()},
             "next_slot": self.next_slot,
             "counter": None if self.counter is None else self.counter.to_dict(),
-            "thresholds": self.thresholds,
+            "thresholds": self.thresholds.to_json(),
             "thresholds_config": self.thresholds_config,
             "monitor_fingerprint": _fingerprint(self.monitor.config),
             "monitor": monitor_state,
@@ -1075,7 +1066,7 @@ class _Feed:
             feed.next_refit_epoch_s = None
         elif feed.next_refit_epoch_s is None:
             feed.next_refit_epoch_s = feed.fitted_at.timestamp() + settings.refit_every_s
-        thresholds = header["thresholds"]
+        thresholds = AlarmLimits.from_json(header["thresholds"])
         feed.thresholds_config = header["thresholds_config"]
         current = json.loads(json.dumps(settings.thresholds_config(cursor.interval_s)))  # as saved
         if current != feed.thresholds_config:
@@ -1186,7 +1177,7 @@ class Engine:
         return out
 
     def install_model(self, feed_id: str, fitted: FittedModel, model_version: int, reason: str,
-                      thresholds: dict[str, Any] | None = None,
+                      thresholds: AlarmLimits | dict[str, Any] | None = None,
                       request: RefitRequest | None = None) -> EngineOutput:
         """Swap in a finished fit for the feed's pending request.
 
@@ -1199,8 +1190,9 @@ class Engine:
             The version the service recorded for this model.
         reason : str
             Why it was fitted (usually the request's reason), shown in status.
-        thresholds : dict, optional
-            Limits from :func:`thresholds_for` (computed here when omitted).
+        thresholds : AlarmLimits or dict, optional
+            Limits from :func:`thresholds_for`, or their JSON form (computed
+            here when omitted).
         request : RefitRequest, optional
             The request answered; refused when it is not the pending one.
 
