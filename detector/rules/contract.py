@@ -53,7 +53,6 @@ rule is one new module defining the rule and its entry, and one line in
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, fields
 from datetime import datetime, timezone
@@ -204,11 +203,6 @@ def event_from_json(data: Mapping[str, Any] | None) -> AlarmEvent | None:
         return None
     return AlarmEvent(**{**data, "start": time_from_json(data["start"]), "end": time_from_json(data.get("end")),
                          "parameters": dict(data.get("parameters") or {})})
-
-
-def float_or_none(value: float) -> float | None:
-    """NaN and infinities as None, for display."""
-    return value if isinstance(value, (int, float)) and math.isfinite(value) else None
 
 
 # ------------------------------------------------------------- registry parts
