@@ -137,8 +137,7 @@ from .fitting import FittedModel, fit
 from .grid import GridCounts, GridCursor, infer_interval_s
 from .innovation import Innovation
 from .readings import Reading
-from .rules import FeedMonitor, MonitorConfig, budget_thresholds, per_point_rate, sigma_thresholds
-from .rules.limits import AlarmLimits
+from .rules import AlarmLimits, FeedMonitor, MonitorConfig, budget_thresholds, per_point_rate, sigma_thresholds
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 from .stream import Stream

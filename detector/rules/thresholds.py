@@ -75,9 +75,9 @@ from ..errors import RuleError
 from .contract import BudgetContext
 from .limits import FORMAT, FORMAT_VERSION, AlarmLimits
 from . import registry
-from .tail_limits import (DAY_S, MIN_RESIDUALS, MIN_TAIL_POINTS, WEEK_S, _pareto_pwm, _tail_quantiles,
-                          empirical_abs_limit, empirical_cusum_h, gaussian_abs_limit, noise_limit_scale,
-                          per_point_rate)
+from .tail_limits import (DAY_S, MIN_RESIDUALS, MIN_TAIL_POINTS, WEEK_S, _pareto_pwm,  # noqa: F401 (re-exported)
+                          _tail_quantiles, empirical_abs_limit, empirical_cusum_h, gaussian_abs_limit,
+                          noise_limit_scale, per_point_rate)
 
 
 def default_shares() -> dict[str, float]:
@@ -208,7 +208,6 @@ def validate_thresholds(data: Any) -> AlarmLimits:
     return AlarmLimits.of(data)
 
 
-__all__ = ["DAY_S", "DEFAULT_SHARES", "MIN_RESIDUALS", "MIN_TAIL_POINTS", "WEEK_S", "AlarmLimits",
+__all__ = ["DAY_S", "DEFAULT_SHARES", "MIN_RESIDUALS", "default_shares", "MIN_TAIL_POINTS", "WEEK_S", "AlarmLimits",
            "budget_thresholds", "empirical_abs_limit", "empirical_cusum_h", "gaussian_abs_limit",
-           "noise_limit_scale", "per_point_rate", "sigma_thresholds", "validate_thresholds",
-           "_pareto_pwm", "_tail_quantiles"]
+           "noise_limit_scale", "per_point_rate", "sigma_thresholds", "validate_thresholds"]
