@@ -17,7 +17,9 @@ Every rule is an object with the methods of :class:`Rule`:
     step is depends on the rule's *kind* (:data:`KINDS`): an
     :class:`~leadline.detector.innovation.Innovation` for ``"innovation"``
     rules, the raw reading for ``"value"`` rules (checked before the model
-    sees it), the clock time for ``"clock"`` rules.
+    sees it), the clock time for ``"clock"`` rules (which give the
+    assessment together with the episode's start, a deterministic instant,
+    so that a late tick gives the same event key).
 ``reset()``
     Forget the running statistics (as after a refit); settings stay.
 ``skip_slot()``
@@ -78,7 +80,7 @@ class Rule(Protocol):
         """The rule's settings, JSON-serialisable; carried by every event."""
 
     def assess(self, observation: Any) -> Any:
-        """The verdict on one step (an Assessment, or None when there is nothing to judge)."""
+        """The verdict on one step: an Assessment ((Assessment, start) for a clock rule), or None."""
 
     def reset(self) -> None:
         """Forget the running statistics."""
