@@ -25,6 +25,7 @@ from typing import Any, Iterable, Mapping
 from leadline.detector.errors import SpecError
 from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.rules.monitor import INNOVATION_RULES, MonitorConfig
+from leadline.detector.rules import registry
 from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
 from leadline.detector.seasonality import SeasonalPeriod
 from leadline.detector.spec import ModelSpec
@@ -82,7 +83,7 @@ BUILTIN_DEFAULTS: dict[str, Any] = {
     "range_high": _default(MonitorConfig, "range_high"),
     "counter": _default(FeedSettings, "counter"),
     "register_size": _default(FeedSettings, "register_size"),
-    "stale_intervals": _default(MonitorConfig, "stale_missing_intervals"),
+    "stale_intervals": _default(MonitorConfig, "stale_intervals"),
 }
 
 #: TOML key -> resolved key (where they differ, the unit is added).
@@ -99,24 +100,19 @@ def _positive() -> Checker:
     return number(0, low_open=True)
 
 
-def _probability(high: float) -> Checker:
-    return number(0, high, low_open=True, high_open=high == 1.0)
+def _limit_check(key: registry.LimitKey) -> Checker:
+    """The config check of one of the rules' limit keys, from its bounds in the registry."""
+    if key.integer:
+        return integer(None if key.low is None else int(key.low))
+    return number(key.low, key.high, low_open=key.low_open, high_open=key.high_open)
 
 
-LIMIT_CHECKS: dict[str, Checker] = {
-    "warning_abs_z": _positive(),
-    "alarm_abs_z": _positive(),
-    "clear_abs_z": _positive(),
-    "cusum_k": number(0),
-    "cusum_h": _positive(),
-    "noise_window": integer(3),
-    "noise_tail_probability": _probability(0.2),
-    "flatline_run_probability_limit": _probability(1.0),
-    "ewma_lam": number(0, 1, low_open=True),
-    "ewma_limit_sigmas": _positive(),
-    "cusum_clip_abs_z": _positive(),
-    "noise_clip_abs_z": _positive(),
-}
+def limit_checks() -> dict[str, Checker]:
+    """Key of the ``limits`` table -> its check: the rules' sigma-mode options in the registry."""
+    return {key.name: _limit_check(key) for key in registry.limit_keys("sigma")}
+
+
+LIMIT_CHECKS: dict[str, Checker] = limit_checks()
 
 
 def _model(value: Any) -> Any:

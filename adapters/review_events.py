@@ -7,14 +7,15 @@ from typing import Any, TextIO
 
 from leadline.detector.errors import DataError
 from leadline.detector.events import SEVERITIES
+from leadline.detector.rules.registry import event_rule_names
 
 from . import review
 from .config_values import did_you_mean
 from .event_formats import write_csv, write_json, write_table
 from .review import Review, Window, add_store_options, add_window_options, iso, open_review, resolve_window
 
-#: The rule names the engine emits (detector/events.py, AlarmEvent.rule), for hints.
-KNOWN_RULES = ("spike", "cusum", "ewma", "flatline", "noise_burst", "stale", "range", "meter_reset")
+#: The rule names the engine emits (AlarmEvent.rule: the rule registry and the engine's own kinds), for hints.
+KNOWN_RULES = event_rule_names()
 DEFAULT_SINCE = "24h"
 FORMATS = ("table", "csv", "json")
 

@@ -66,7 +66,7 @@ def feed_settings(config: Config, feed_id: str) -> FeedSettings:
         sigma_limits=limits if mode == "sigma" else None,
         budget_options=limits if mode == "budget" else None,
         monitor=MonitorConfig(range_low=options["range_low"], range_high=options["range_high"],
-                              stale_missing_intervals=options["stale_intervals"],
+                              stale_intervals=options["stale_intervals"],
                               rules=tuple(options["rules"]) if options["rules"] else None),
         counter=options["counter"],
         register_size=options["register_size"],

@@ -50,6 +50,7 @@ from .errors import DataError
 from .feed import FeedLifecycle
 from .feed_settings import FeedSettings
 from .feed_state import feed_checkpoint, feed_from_checkpoint
+from .rules.limits import AlarmLimits
 from .fitting import FittedModel
 from .readings import Reading
 from .refit import RefitRequest, run_refit, run_refit_with_thresholds, thresholds_for
@@ -120,7 +121,7 @@ class Engine:
         return out
 
     def install_model(self, feed_id: str, fitted: FittedModel, model_version: int, reason: str,
-                      thresholds: dict[str, Any] | None = None,
+                      thresholds: AlarmLimits | dict[str, Any] | None = None,
                       request: RefitRequest | None = None) -> EngineOutput:
         """Swap in a finished fit for the feed's pending request.
 
@@ -133,7 +134,7 @@ class Engine:
             The version the service recorded for this model.
         reason : str
             Why it was fitted (usually the request's reason), shown in status.
-        thresholds : dict, optional
+        thresholds : AlarmLimits or dict, optional
             Limits from :func:`thresholds_for` (computed here when omitted).
         request : RefitRequest, optional
             The request answered; refused when it is not the pending one.

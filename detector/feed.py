@@ -64,7 +64,7 @@ from .feed_state import encode_time
 from .fitting import FittedModel
 from .grid import GridCounts, GridCursor, infer_interval_s
 from .readings import Reading
-from .rules import FeedMonitor, MonitorConfig, per_point_rate
+from .rules import AlarmLimits, FeedMonitor, MonitorConfig, per_point_rate
 from .seasonality import CalendarTerms
 from .refit import RefitRequest, RingBuffer, thresholds_for
 from .spec import ModelSpec
@@ -119,7 +119,7 @@ class FeedLifecycle:
         self.history = RingBuffer(settings.refit_window_points)
         self.pending: _Pending | None = None
         self.monitor: FeedMonitor | None = None
-        self.thresholds: dict[str, Any] | None = None
+        self.thresholds: AlarmLimits | None = None
         self.thresholds_config: dict[str, Any] | None = None
         self.model_version: int | None = None
         self.model_label: str | None = None
@@ -149,7 +149,7 @@ class FeedLifecycle:
         m = self.settings.monitor
         return m.range_low is not None or m.range_high is not None
 
-    def monitor_config(self, thresholds: dict[str, Any]) -> MonitorConfig:
+    def monitor_config(self, thresholds: AlarmLimits) -> MonitorConfig:
         return replace(self.settings.monitor, thresholds=thresholds, interval_s=self.cursor.interval_s)
 
     def at_last_slot(self) -> datetime:
@@ -257,17 +257,16 @@ class FeedLifecycle:
             self._watch(value, ts, slot, out)
 
     def _watch(self, value: float, ts: datetime, slot: int, out: EngineOutput) -> None:
-        monitor = self.monitor
-        reanchors = monitor.reanchors
-        out.events.extend(monitor.process(value, ts))
-        inn = monitor.last_innovation
+        step = self.monitor.process(value, ts)
+        out.events.extend(step.events)
+        inn = step.innovation
         out.innovations.append((self.feed_id, inn))
         # the refit window holds readings on the current model's base level (see _request_refit)
-        model_value = inn.value - monitor.stream.level_offset if inn.absorbed else math.nan
+        model_value = inn.value - step.level_offset if inn.absorbed else math.nan
         self.history.append(model_value)
         if self.pending is not None:
             self.pending.buffer.append(model_value)
-        if monitor.reanchors != reanchors or any(life.is_active for life in monitor.lifecycles.values()):
+        if step.reanchored or step.episodes_open:
             self.diagnostics.reset()  # a fault the rules already report is not a misfit of the model
         else:
             self.diagnostics.add(inn)
@@ -365,7 +364,7 @@ class FeedLifecycle:
         out.refit_requests.append(request)
 
     def install(self, fitted: FittedModel, model_version: int, reason: str,
-                thresholds: dict[str, Any] | None, request: RefitRequest | None) -> EngineOutput:
+                thresholds: AlarmLimits | dict[str, Any] | None, request: RefitRequest | None) -> EngineOutput:
         p = self.pending
         if p is None:
             raise DataError(f"feed {self.feed_id!r}: no refit is pending; install_model answers a RefitRequest")
@@ -379,7 +378,7 @@ class FeedLifecycle:
                             f"the pending request has {p.request.values.size}")
         if isinstance(model_version, bool) or not isinstance(model_version, int):
             raise DataError(f"feed {self.feed_id!r}: model_version must be an integer, got {model_version!r}")
-        th = thresholds if thresholds is not None else thresholds_for(fitted, p.request)
+        th = AlarmLimits.of(thresholds) if thresholds is not None else thresholds_for(fitted, p.request)
         stream = fitted.stream(level=self.settings.level, model_version=model_version)
         config = self.monitor_config(th)
         out = EngineOutput()
@@ -418,18 +417,9 @@ class FeedLifecycle:
         if shift != 0.0:
             stream.shift_level(shift)
         self.history.add(base)
-        monitor = FeedMonitor(self.feed_id, stream, config,
-                              last_seen=old.stale.last_seen if old.stale is not None else self.last_seen)
+        monitor = FeedMonitor(self.feed_id, stream, config, last_seen=self.last_seen)
         when = self.at_last_slot()
-        for name, life in old.lifecycles.items():
-            if not life.is_active:
-                continue
-            if name in monitor.lifecycles:
-                life.parameters = monitor.lifecycles[name].parameters
-                monitor.lifecycles[name] = life
-            else:
-                out.events.append(life.close(when, detail=f"{life.current.detail}; closed: model version "
-                                                          f"{model_version} has no {name} rule"))
+        out.events.extend(monitor.carry_over(old, when))
         self.monitor = monitor
         out.state_changes.append(StateChange(
             self.feed_id, "watching", "watching", when,
@@ -496,7 +486,7 @@ class FeedLifecycle:
             else self.pending.request.reason,
             "next_refit_at": None if self.next_refit_epoch_s is None else _utc(self.next_refit_epoch_s).isoformat(),
             "last_refit_error": self.last_refit_error,
-            "threshold_mode": None if self.thresholds is None else self.thresholds.get("mode"),
+            "threshold_mode": None if self.thresholds is None else self.thresholds.mode,
             "diagnostics": self.diagnostics.last,
         }
         if self.state == "learning":

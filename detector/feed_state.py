@@ -22,22 +22,26 @@ a checkpoint cannot run code.
 
 The rules' state
 ----------------
-:func:`snapshot_monitor` walks a :class:`~leadline.detector.rules.FeedMonitor`
-and its rule objects attribute by attribute and writes plain values
-(numbers, text, lists, tuples, deques, dicts, UTC datetimes, and the
-frozen value types of the rules such as :class:`~leadline.detector.events.AlarmEvent`).
-:func:`restore_monitor` writes them back *into* a monitor freshly built with
-the same configuration, object by object, so shared references (the
-monitor's list of its rules) stay intact. Long sequences of numeric tuples
-(the re-anchoring history) go to the array archive, not the JSON.
-The engine only restores into a monitor whose configuration fingerprint
-matches the saved one; any mismatch of structure is a
+:func:`snapshot_monitor` asks the monitor for its state
+(:meth:`~leadline.detector.rules.FeedMonitor.state_dict`: each rule and
+lifecycle writes its own fields explicitly, as plain JSON values, with a
+layout version ``"v"``); nothing is read from the objects' attributes, so
+renaming a private field does not change a checkpoint. Long tables of
+numbers (the re-anchoring history) go to the array archive, not the JSON.
+:func:`restore_monitor` hands the state back
+(:meth:`~leadline.detector.rules.FeedMonitor.load_state`) to a monitor
+freshly built with the same configuration. The engine only restores into a
+monitor whose configuration fingerprint matches the saved one; any
+mismatch of structure, or a version this build does not read, is a
 :class:`~leadline.detector.errors.StateFormatError`.
+
+Checkpoints written before the rules' state had its own layout hold the
+monitor as its attributes (``{"$object": "FeedMonitor", "attrs": ...}``);
+they are read too (:func:`_legacy_state`).
 """
 
 from __future__ import annotations
 
-import dataclasses
 import io
 import json
 import struct
@@ -57,10 +61,12 @@ from .grid import GridCounts, GridCursor
 from .innovation import Innovation
 from .refit import RingBuffer
 from .rules.monitor import FeedMonitor, MonitorConfig
+from .rules.limits import AlarmLimits
 from .rules.thresholds import sigma_thresholds
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 from .stream import Stream
+from .rules.contract import event_from_json, event_to_json, innovation_to_json
 from .rules.cusum import CusumSignal
 from .rules.level_shift import LevelShiftEstimate
 from .rules.lifecycle import Assessment, LifecycleConfig
@@ -69,14 +75,8 @@ _MAGIC = b"LLFEED01"
 #: Version of the byte format written by :func:`pack`.
 FEED_STATE_FORMAT_VERSION = 1
 
-#: Frozen value types that may appear in a monitor's state, by name.
-VALUE_TYPES = {cls.__name__: cls for cls in (AlarmEvent, Innovation, CusumSignal, Assessment, LifecycleConfig,
-                                             LevelShiftEstimate)}
-#: Attributes of the monitor itself that are not state: rebuilt from the configuration.
-MONITOR_SKIP = frozenset({"stream", "config", "_rules", "feed_id"})
-#: Sequences of numeric tuples at least this long go to the array archive.
+#: Lists of numeric rows at least this long go to the array archive.
 TABLE_MIN_ROWS = 16
-_RULES_MODULE = "leadline.detector.rules"
 
 
 # --------------------------------------------------------------- byte format
@@ -131,63 +131,87 @@ def decode_time(text: str | None) -> datetime | None:
     return when.astimezone(timezone.utc)
 
 
-# ----------------------------------------------------------- value encoding
-class _Encoder:
-    """Plain values to JSON-ready form; long numeric tables to arrays."""
+# ------------------------------------------------------------ the monitor
+def _is_row(row: Any) -> bool:
+    return isinstance(row, list) and bool(row) and all(
+        isinstance(x, (bool, int, float)) for x in row)
 
-    def __init__(self, prefix: str) -> None:
-        self.prefix = prefix
-        self.arrays: dict[str, np.ndarray] = {}
 
-    def value(self, v: Any) -> Any:
-        if v is None or isinstance(v, (bool, str)):
-            return v
-        if isinstance(v, (int, float)):
-            return v
-        if isinstance(v, np.generic):
-            return v.item()
-        if isinstance(v, datetime):
-            if v.tzinfo is None:
-                raise StateFormatError("cannot save a naive datetime in a feed checkpoint")
-            return {"$time": v.isoformat()}
-        if isinstance(v, (list, tuple, deque)):
-            table = self._table(v)
-            kind = "list" if isinstance(v, list) else ("tuple" if isinstance(v, tuple) else "deque")
-            out: dict[str, Any] = {"$" + kind: table if table is not None else [self.value(x) for x in v]}
-            if isinstance(v, deque):
-                out["maxlen"] = v.maxlen
-            return out
-        if isinstance(v, dict):
-            if not all(isinstance(k, str) for k in v):
-                raise StateFormatError(f"cannot save a dict with non-text keys: {list(v)[:3]!r}")
-            return {"$dict": {k: self.value(x) for k, x in v.items()}}
-        if dataclasses.is_dataclass(v) and type(v).__name__ in VALUE_TYPES:
-            return {"$value": type(v).__name__,
-                    "fields": {f.name: self.value(getattr(v, f.name)) for f in dataclasses.fields(v)}}
-        if type(v).__module__.startswith(_RULES_MODULE) and hasattr(v, "__dict__"):
-            return {"$object": type(v).__qualname__, "attrs": {k: self.value(x) for k, x in vars(v).items()}}
-        raise StateFormatError(f"cannot save a value of type {type(v).__qualname__} in a feed checkpoint")
+def _tables_out(value: Any, arrays: dict[str, np.ndarray], prefix: str) -> Any:
+    """``value`` with every long list of equal-width numeric rows moved to ``arrays``."""
+    if isinstance(value, dict):
+        return {k: _tables_out(v, arrays, prefix) for k, v in value.items()}
+    if isinstance(value, list):
+        if len(value) >= TABLE_MIN_ROWS and all(_is_row(row) for row in value):
+            types = ["b" if isinstance(x, bool) else "i" if isinstance(x, int) else "f" for x in value[0]]
+            if all(len(row) == len(types) and ["b" if isinstance(x, bool) else "i" if isinstance(x, int) else "f"
+                                               for x in row] == types for row in value):
+                name = f"{prefix}{len(arrays)}"
+                arrays[name] = np.array(value, dtype=float).reshape(len(value), len(types))
+                return {"$table": name, "types": "".join(types)}
+        return [_tables_out(v, arrays, prefix) for v in value]
+    return value
 
-    def _table(self, seq: Any) -> dict[str, Any] | None:
-        """Numeric tuples of one width, stored as a float64 array with column types."""
-        if len(seq) < TABLE_MIN_ROWS or not all(isinstance(row, tuple) for row in seq):
-            return None
-        width = len(seq[0])
-        types: list[str] | None = None
-        for row in seq:
-            if len(row) != width:
-                return None
-            row_types = ["b" if isinstance(x, bool) else "i" if isinstance(x, int) else
-                         "f" if isinstance(x, float) else "?" for x in row]
-            if "?" in row_types or (types is not None and row_types != types):
-                return None
-            types = row_types
-        name = f"{self.prefix}{len(self.arrays)}"
-        self.arrays[name] = np.array(seq, dtype=float).reshape(len(seq), width)
-        return {"$table": name, "types": "".join(types)}
+
+def _tables_in(value: Any, arrays: dict[str, np.ndarray]) -> Any:
+    if isinstance(value, dict):
+        if "$table" in value:
+            try:
+                array = arrays[value["$table"]]
+            except KeyError as exc:
+                raise StateFormatError(f"feed checkpoint is missing array {value['$table']!r}") from exc
+            casts = {"b": bool, "i": int, "f": float}
+            kinds = [casts[t] for t in value["types"]]
+            return [[cast(x) for cast, x in zip(kinds, row)] for row in array.tolist()]
+        return {k: _tables_in(v, arrays) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_tables_in(v, arrays) for v in value]
+    return value
+
+
+def snapshot_monitor(monitor: Any, prefix: str = "monitor_") -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """The running state of a FeedMonitor and its rules: (JSON-ready dict, arrays)."""
+    arrays: dict[str, np.ndarray] = {}
+    return _tables_out(monitor.state_dict(), arrays, prefix), arrays
+
+
+def _monitor_state(saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> dict[str, Any]:
+    if not isinstance(saved, dict):
+        raise StateFormatError("feed checkpoint is corrupt: the rules' state is not a JSON object")
+    if "$object" in saved:
+        return _legacy_state(saved, arrays)
+    return _tables_in(saved, arrays)
+
+
+def restore_monitor(monitor: Any, saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
+    """Write a :func:`snapshot_monitor` back into a monitor built with the same configuration."""
+    monitor.load_state(_monitor_state(saved, arrays))
+
+
+def saved_open_events(saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> list[AlarmEvent]:
+    """The episodes that were open in a saved monitor (to close them when it cannot be restored)."""
+    state = _monitor_state(saved, arrays)
+    out = []
+    for life in state.get("lifecycles", {}).values():
+        event = event_from_json(life.get("open_episode"))
+        if event is not None:
+            out.append(event)
+    return out
+
+
+# --------------------------------------------- checkpoints of the first layout
+#: Frozen value types that may appear in a first-layout monitor state, by name.
+VALUE_TYPES = {cls.__name__: cls for cls in (AlarmEvent, Innovation, CusumSignal, Assessment, LifecycleConfig,
+                                             LevelShiftEstimate)}
+
+
+class _LegacyObject(dict):
+    """The decoded attributes of a saved rule object, by their attribute names."""
 
 
 class _Decoder:
+    """Values of the first layout: tagged JSON and tables of numeric tuples."""
+
     def __init__(self, arrays: dict[str, np.ndarray]) -> None:
         self.arrays = arrays
 
@@ -215,7 +239,7 @@ class _Decoder:
                 raise StateFormatError(f"feed checkpoint names an unknown value type {v['$value']!r}")
             return cls(**{k: self.value(x) for k, x in v["fields"].items()})
         if "$object" in v:
-            raise StateFormatError(f"feed checkpoint holds a {v['$object']} where this build has none")
+            return _LegacyObject({k: self.value(x) for k, x in v["attrs"].items()})
         raise StateFormatError(f"feed checkpoint is corrupt: unknown tag in {sorted(v)[:3]}")
 
     def _items(self, data: Any) -> list[Any]:
@@ -230,61 +254,31 @@ class _Decoder:
         return [self.value(x) for x in data]
 
 
-# ------------------------------------------------------------ the monitor
-def snapshot_monitor(monitor: Any, prefix: str = "monitor_") -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    """The running state of a FeedMonitor and its rules: (JSON-ready dict, arrays)."""
-    encoder = _Encoder(prefix)
-    attrs = {k: encoder.value(v) for k, v in vars(monitor).items() if k not in MONITOR_SKIP}
-    return {"$object": type(monitor).__qualname__, "attrs": attrs}, encoder.arrays
-
-
-def _restore_into(target: Any, saved: dict[str, Any], decoder: _Decoder, where: str) -> None:
-    if saved.get("$object") != type(target).__qualname__:
-        raise StateFormatError(f"feed checkpoint: {where} was a {saved.get('$object')}, "
-                               f"this build has a {type(target).__qualname__}")
-    current = vars(target)
-    for name, value in saved["attrs"].items():
-        path = f"{where}.{name}"
-        here = current.get(name)  # an attribute a rule sets only when needed may be absent here
-        if isinstance(value, dict) and "$object" in value:
-            if name not in current:
-                raise StateFormatError(f"feed checkpoint: {path} does not exist in this build")
-            _restore_into(here, value, decoder, path)
-        elif isinstance(value, dict) and "$dict" in value and isinstance(here, dict) \
-                and any(isinstance(x, dict) and "$object" in x for x in value["$dict"].values()):
-            if set(here) != set(value["$dict"]):
-                raise StateFormatError(f"feed checkpoint: {path} holds {sorted(value['$dict'])}, "
-                                       f"this monitor has {sorted(here)}")
-            for key, item in value["$dict"].items():
-                if isinstance(item, dict) and "$object" in item:
-                    _restore_into(here[key], item, decoder, f"{path}[{key!r}]")
-                else:
-                    here[key] = decoder.value(item)
-        else:
-            setattr(target, name, decoder.value(value))
-
-
-def restore_monitor(monitor: Any, saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
-    """Write a :func:`snapshot_monitor` back into a monitor built with the same configuration."""
-    _restore_into(monitor, saved, _Decoder(arrays), "monitor")
-
-
-def saved_open_events(saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> list[AlarmEvent]:
-    """The episodes that were open in a saved monitor (to close them when it cannot be restored)."""
-    decoder = _Decoder(arrays)
-    lifecycles = saved.get("attrs", {}).get("lifecycles", {}).get("$dict", {})
-    out = []
-    for life in lifecycles.values():
-        event = life.get("attrs", {}).get("_event")
-        if event is not None:
-            out.append(decoder.value(event))
-    return out
+def _legacy_rule(name: str, attrs: dict[str, Any]) -> dict[str, Any]:
+    """One rule's first-layout attributes as its state dict (version 1)."""
+    if name == "cusum":
+        c = attrs["cusum"]
+        return {"v": 1, "chart": {"v": 1, "calls": c["_calls"], "s_hi": c["_s_hi"], "s_lo": c["_s_lo"],
+                                  "n_hi": c["_n_hi"], "n_lo": c["_n_lo"], "start_hi": c["_start_hi"],
+                                  "start_lo": c["_start_lo"], "held": c["_held"],
+                                  "held_call": c.get("_held_call", 0)}}
+    if name == "ewma":
+        return {"v": 1, "chart": {"v": 1, "average": attrs["chart"]["_e"], "steps": attrs["chart"]["_steps"]}}
+    if name == "noise_burst":
+        return {"v": 1, "window": list(attrs["_values"])}
+    if name == "flatline":
+        log_p = attrs["_log_p"]
+        return {"v": 1, "previous": attrs["_previous"], "run_steps": attrs["_run"],
+                "log_run_probability": log_p if np.isfinite(log_p) else None}
+    if name == "stale":
+        return {"v": 1, "last_seen": encode_time(attrs["last_seen"])}
+    return {"v": 1}
 
 
 # ----------------------------------------------------------------- the feed
 def _fingerprint(config: MonitorConfig) -> str:
     """The rules' configuration as text: rule states are restored only into an equal one."""
-    return json.dumps(dataclasses.asdict(config), sort_keys=True, default=repr)
+    return config.fingerprint()
 
 
 def feed_checkpoint(feed: Any) -> bytes:
@@ -323,7 +317,7 @@ def feed_checkpoint(feed: Any) -> bytes:
                    "counts": c.counts.as_dict()},
         "next_slot": feed.next_slot,
         "counter": None if feed.counter is None else feed.counter.to_dict(),
-        "thresholds": feed.thresholds,
+        "thresholds": feed.thresholds.to_json(),
         "thresholds_config": feed.thresholds_config,
         "monitor_fingerprint": _fingerprint(feed.monitor.config),
         "monitor": monitor_state,
@@ -418,7 +412,7 @@ def _feed_from_parts(new_feed: Callable[[str, Any], Any], feed_id: str, settings
         feed.next_refit_epoch_s = None
     elif feed.next_refit_epoch_s is None:
         feed.next_refit_epoch_s = feed.fitted_at.timestamp() + settings.refit_every_s
-    thresholds = header["thresholds"]
+    thresholds = AlarmLimits.from_json(header["thresholds"])
     feed.thresholds_config = header["thresholds_config"]
     current = json.loads(json.dumps(settings.thresholds_config(cursor.interval_s)))  # as saved
     if current != feed.thresholds_config:
@@ -465,3 +459,29 @@ def _feed_from_parts(new_feed: Callable[[str, Any], Any], feed_id: str, settings
         f"resumed from checkpoint at slot {feed.next_slot} with model version {model_version} "
         f"({feed.model_label}); no learning phase; {resumed}"))
     return feed, out
+
+def _legacy_state(saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> dict[str, Any]:
+    """A first-layout monitor (its attributes) as a :meth:`FeedMonitor.state_dict` (version 1)."""
+    if saved.get("$object") != "FeedMonitor":
+        raise StateFormatError(f"feed checkpoint: monitor was a {saved.get('$object')}, this build has a FeedMonitor")
+    attrs = _Decoder(arrays).value(saved)
+    try:
+        lifecycles = {name: {"v": 1, "on_delay_window": list(life["_window"]),
+                             "open_episode": event_to_json(life["_event"]), "off_delay_count": life["_clear_count"]}
+                      for name, life in attrs["lifecycles"].items()}
+        rules = {name: _legacy_rule(name, attrs[name]) for name in attrs["lifecycles"]}
+        pending_shock, pending = attrs["_pending_shock"], attrs["_pending"]
+        return {
+            "v": 1, "readings": attrs["readings"], "not_absorbed": attrs["not_absorbed"], "shocks": attrs["shocks"],
+            "reanchors": attrs["reanchors"], "last_reanchor": attrs["last_reanchor"], "steps": attrs["_steps"],
+            "shock_candidate": None if pending_shock is None else list(pending_shock),
+            "last_absorbed": attrs["_last_absorbed"],
+            "last_innovation": innovation_to_json(attrs["last_innovation"]),
+            "history": [list(row) for row in attrs["_history"]],
+            "settle": None if attrs["_settle"] is None else [list(row) for row in attrs["_settle"]],
+            "settle_prior_se": attrs["_settle_prior_se"],
+            "unconfirmed": None if pending is None else list(pending),
+            "rules": rules, "lifecycles": lifecycles,
+        }
+    except (KeyError, TypeError) as exc:
+        raise StateFormatError(f"feed checkpoint: the saved rules' state lacks {exc}") from exc

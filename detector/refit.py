@@ -50,7 +50,7 @@ import numpy as np
 
 from .durations import WEEK_S
 from .fitting import FittedModel, fit
-from .rules import budget_thresholds, sigma_thresholds
+from .rules import AlarmLimits, budget_thresholds, sigma_thresholds
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 
@@ -107,13 +107,13 @@ def run_refit(request: RefitRequest) -> FittedModel:
                seasonal_period=request.seasonal_period)
 
 
-def thresholds_for(fitted: FittedModel, request: RefitRequest) -> dict[str, Any]:
+def thresholds_for(fitted: FittedModel, request: RefitRequest) -> AlarmLimits:
     """The alarm limits for a fit: budget mode from its standardized residuals, or sigma mode."""
     return thresholds_from_config(fitted, request.values, request.interval_s, request.thresholds_config)
 
 
 def thresholds_from_config(fitted: FittedModel, values: np.ndarray, interval_s: float,
-                           config: dict[str, Any]) -> dict[str, Any]:
+                           config: dict[str, Any]) -> AlarmLimits:
     """The alarm limits for a fit of ``values`` on a grid of ``interval_s``.
 
     Parameters
@@ -139,12 +139,13 @@ def thresholds_from_config(fitted: FittedModel, values: np.ndarray, interval_s: 
 def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[str, Any]]:
     """:func:`run_refit` and :func:`thresholds_for` in one call, so both run in the worker.
 
-    Pass the limits to :meth:`~leadline.detector.engine.Engine.install_model`
-    (``thresholds=``); budget limits take a few tenths of a second per feed,
-    which the service loop should not spend.
+    The limits come in their JSON form (as stored with the model). Pass them
+    to :meth:`~leadline.detector.engine.Engine.install_model` (``thresholds=``);
+    budget limits take a few tenths of a second per feed, which the service
+    loop should not spend.
     """
     fitted = run_refit(request)
-    return fitted, thresholds_for(fitted, request)
+    return fitted, thresholds_for(fitted, request).to_json()
 
 
 # ------------------------------------------------------------ refit window

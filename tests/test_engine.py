@@ -218,7 +218,7 @@ def test_gaps_give_nan_steps_and_bad_timestamps_are_counted_and_dropped():
 
 def test_a_stale_feed_is_raised_by_tick_and_cleared_by_the_next_reading():
     y = ar1(330, seed=9)
-    engine = Engine(lambda feed_id: settings(monitor=MonitorConfig(stale_missing_intervals=5),
+    engine = Engine(lambda feed_id: settings(monitor=MonitorConfig(stale_intervals=5),
                                              future_tolerance_s=None))
     driver = Driver(engine)
     driver.feed(y[:200])

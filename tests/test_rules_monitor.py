@@ -18,7 +18,7 @@ import pytest
 from leadline.detector.errors import DataError, RuleError
 from leadline.detector.events import CAUTION
 from leadline.detector.fitting import fit
-from leadline.detector.rules import FeedMonitor, MonitorConfig, budget_thresholds, sigma_thresholds
+from leadline.detector.rules import AlarmLimits, FeedMonitor, MonitorConfig, budget_thresholds, sigma_thresholds
 from leadline.detector.rules.thresholds import DAY_S, WEEK_S
 from leadline.detector.spec import ModelSpec
 
@@ -176,7 +176,7 @@ def test_a_frozen_reading_raises_flatline(ar1):
 def test_stale_feed_is_raised_by_tick_and_cleared_by_the_next_reading(ar1):
     model, th, clean = ar1
     monitor = FeedMonitor("f", model.stream(), MonitorConfig(thresholds=th, interval_s=INTERVAL_S,
-                                                              stale_missing_intervals=5))
+                                                              stale_intervals=5))
     run(monitor, clean[:10])
     assert monitor.tick(at(9) + timedelta(minutes=4)) == []
     raised = monitor.tick(at(9) + timedelta(minutes=6))
@@ -193,7 +193,7 @@ def test_missing_readings_and_bad_timestamps(ar1):
     model, th, clean = ar1
     monitor = FeedMonitor("f", model.stream(), MonitorConfig(thresholds=th))
     step = monitor.stream.step
-    assert monitor.process(math.nan, at(0)) == []
+    assert monitor.process(math.nan, at(0)).events == []
     assert monitor.stream.step == step + 1 and monitor.last_innovation.is_missing
     with pytest.raises(DataError, match="timezone-aware"):
         monitor.process(1.0, datetime(2024, 1, 1))
@@ -230,18 +230,19 @@ def test_budget_mode_keeps_a_heavy_tailed_feed_within_its_budget():
     model = fit(y[:5000], ModelSpec.white_noise())
     th = budget_thresholds(model.standardized_residuals, interval_s=60, false_alarms=1, per_s=DAY_S,
                            values=y[:5000])
-    gaussian = json.loads(json.dumps(th))
+    gaussian = th.to_json()
     gaussian["spike"].update(warning_abs_z=th["spike"]["gaussian_warning_abs_z"],
                              alarm_abs_z=th["spike"]["gaussian_alarm_abs_z"],
                              clear_abs_z=0.75 * th["spike"]["gaussian_warning_abs_z"])
     gaussian["cusum"]["h"] = th["cusum"]["gaussian_h"]
     gaussian["noise_burst"]["limit_scale"] = 1.0
+    gaussian = AlarmLimits.from_json(gaussian)
     counts = {}
     for name, limits in (("budget", th), ("gaussian", gaussian)):
         monitor = FeedMonitor("f", model.stream(), MonitorConfig(thresholds=limits))
         events, _ = run(monitor, y[5000:])
         counts[name] = len(onsets(events))
-    budget = th["budget"]["per_point_rate"] * 10_000
+    budget = th.budget["per_point_rate"] * 10_000
     allowed = budget + 3 * math.sqrt(budget)
     assert counts["budget"] <= allowed, counts
     assert counts["gaussian"] > 3 * allowed, counts
@@ -266,18 +267,28 @@ def test_a_process_shock_is_recognised_by_the_next_reading(ar1):
     assert max(abs(inn.z) for inn in inns[151:200]) < th["spike"]["warning_abs_z"]
 
 
-def test_set_stream_keeps_open_episodes_and_restarts_the_statistics(ar1):
+def test_carry_over_keeps_open_episodes_and_restarts_the_statistics(ar1):
     model, th, clean = ar1
     values = clean[:60].copy()
     values[50] += 12 * math.sqrt(model.sigma2)
     monitor = FeedMonitor("f", model.stream(model_version=1), MonitorConfig(thresholds=th))
     events, _ = run(monitor, values[:51])
     assert monitor.lifecycles["spike"].is_active
-    monitor.set_stream(model.stream(model_version=2))
-    assert monitor.cusum.cusum.statistic == 0.0 and monitor.noise_burst.valid == 0
-    later, _ = run(monitor, values[51:], start=51)
+    # the next model's monitor continues the episode: no event now, the statistics start afresh
+    successor = FeedMonitor("f", model.stream(model_version=2), MonitorConfig(thresholds=th))
+    assert successor.carry_over(monitor, at(50)) == []
+    assert successor.lifecycles["spike"].is_active and successor.lifecycles["spike"] is monitor.lifecycles["spike"]
+    assert successor.cusum.cusum.statistic == 0.0 and successor.noise_burst.valid == 0
+    later, _ = run(successor, values[51:], start=51)
     closes = [ev for ev in later if ev.end is not None]
     assert [ev.key for ev in closes] == [onsets(events)[0].key]  # the same episode, closed on the new model
+    # a rule the next model does not run has its episode closed at once
+    fewer = FeedMonitor("f", model.stream(model_version=3), MonitorConfig(thresholds=th, rules=("cusum",)))
+    monitor2 = FeedMonitor("f", model.stream(model_version=1), MonitorConfig(thresholds=th))
+    run(monitor2, values[:51])
+    (closed,) = fewer.carry_over(monitor2, at(51))
+    assert closed.rule == "spike" and closed.end == at(51)
+    assert "model version 3 has no spike rule" in closed.detail
 
 
 def test_the_optional_ewma_rule_runs_in_the_monitor(ar1):

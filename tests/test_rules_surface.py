@@ -17,10 +17,11 @@ FORBIDDEN = {"paho", "sqlalchemy", "psycopg", "socket", "sqlite3", "leadline.ada
 
 def test_public_surface_is_the_documented_one():
     assert sorted(rules.__all__) == sorted([
-        "AlarmLifecycle", "Assessment", "CusumRule", "CusumSignal", "EwmaChart", "EwmaRule", "FeedMonitor",
-        "FlatlineRule", "LifecycleConfig", "MonitorConfig", "NoiseBurstRule", "RangeRule", "SpikeRule",
-        "StaleRule", "TabularCusum", "budget_thresholds", "cusum_arl", "ewma_arl", "per_point_rate",
-        "shewhart_arl", "sigma_thresholds", "validate_thresholds",
+        "AlarmLifecycle", "AlarmLimits", "Assessment", "CusumRule", "CusumSignal", "EwmaChart", "EwmaRule",
+        "FeedMonitor", "FlatlineRule", "LifecycleConfig", "LimitKey", "MonitorConfig", "NoiseBurstRule",
+        "RangeRule", "Rule", "RuleEntry", "SpikeRule", "StaleRule", "StepResult", "TabularCusum",
+        "budget_thresholds", "cusum_arl", "ewma_arl", "per_point_rate", "shewhart_arl", "sigma_thresholds",
+        "validate_thresholds",
     ])
     for name in rules.__all__:
         obj = getattr(rules, name)

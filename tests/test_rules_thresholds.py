@@ -18,6 +18,7 @@ from scipy.stats import t as student_t
 from leadline.detector.errors import RuleError
 from leadline.detector.innovation import Innovation
 from leadline.detector.rules import (
+    AlarmLimits,
     AlarmLifecycle,
     LifecycleConfig,
     SpikeRule,
@@ -99,17 +100,17 @@ def test_budget_thresholds_are_json_serialisable_and_validated():
     z = np.random.default_rng(4).standard_normal(3000)
     th = budget_thresholds(z, interval_s=300, false_alarms=1, per_s=WEEK_S, ewma_lam=0.1,
                            values=np.round(z * 3 + 40, 1))
-    again = json.loads(json.dumps(th))
-    assert validate_thresholds(again) == again
+    again = json.loads(json.dumps(th.to_json()))
+    assert validate_thresholds(again) == th and AlarmLimits.from_json(again).to_json() == again
     assert th["flatline"]["resolution"] == pytest.approx(0.1)
     assert th["ewma"]["lam"] == 0.1 and th["ewma"]["limit_sigmas"] > 2
-    shares = th["budget"]["shares"]
+    shares = th.budget["shares"]
     assert sum(shares.values()) == pytest.approx(1.0)
 
 
 def test_sigma_thresholds_match_lucas_crosier_h():
     th = sigma_thresholds(cusum_k=0.5, cusum_h=4.0, cusum_clip_abs_z=None)
-    assert th["mode"] == "sigma" and th["cusum"] == {"k": 0.5, "h": 4.0, "clip_abs_z": None}
+    assert th.mode == "sigma" and th["cusum"] == {"k": 0.5, "h": 4.0, "clip_abs_z": None}
 
 
 @pytest.mark.parametrize("mutate, message", [
@@ -120,7 +121,7 @@ def test_sigma_thresholds_match_lucas_crosier_h():
     (lambda d: d["noise_burst"].update(window=float("nan")), "'noise_burst.window'"),
 ])
 def test_bad_thresholds_name_the_key(mutate, message):
-    th = sigma_thresholds()
+    th = sigma_thresholds().to_json()
     mutate(th)
     with pytest.raises(RuleError, match=message):
         validate_thresholds(th)
@@ -155,7 +156,7 @@ def test_budget_mode_keeps_heavy_tailed_false_alarms_within_the_budget():
     train /= train.std()
     clean = rng.standard_t(4, 10_000) / math.sqrt(2)
     th = budget_thresholds(train, interval_s=60, false_alarms=1, per_s=DAY_S)
-    budget = th["budget"]["per_point_rate"] * th["budget"]["shares"]["spike"] * clean.size
+    budget = th.budget["per_point_rate"] * th.budget["shares"]["spike"] * clean.size
     allowed = budget + 3 * math.sqrt(budget)
     sp = th["spike"]
     assert th["noise_burst"]["limit_scale"] > 1.0  # heavier tails than normal: wider noise-burst limits

@@ -38,3 +38,43 @@ def test_bad_bytes_are_refused(stream):
         Stream.from_bytes(newer)
     with pytest.raises(StateFormatError, match="corrupt"):
         Stream.from_bytes(data[:-40])
+
+
+# ------------------------------------------------- checkpoints of the first layout
+def test_a_checkpoint_of_the_first_layout_resumes_like_an_uninterrupted_run():
+    # tests/data/checkpoint_first_layout.bin was written by the first checkpoint layout (the rules'
+    # state saved as the objects' attributes), for the engine tests' feed cut at slot 601, inside
+    # the spike episode of slot 600. It must resume with its rule states, as a run that never stopped.
+    from datetime import datetime, timedelta, timezone
+    from pathlib import Path
+
+    from engine_helpers import ar1, settings
+    from leadline.detector.engine import Engine, EngineOutput, run_refit
+    from leadline.detector.readings import Reading
+
+    feed = "kestrel-hill/bulk/meter-2"
+    t0 = datetime(2024, 5, 6, tzinfo=timezone.utc)
+    y = ar1(1100, seed=5)
+    y[600] += 10.0
+    y[900:] += 3.0
+
+    def drive(engine, start):
+        out = EngineOutput()
+        for i in range(start, len(y)):
+            step = engine.process(Reading(feed, t0 + timedelta(minutes=i), float(y[i])))
+            out.extend(step)
+            for request in step.refit_requests:
+                out.extend(engine.install_model(feed, run_refit(request), 1, request.reason))
+        return out
+
+    whole = drive(Engine(lambda feed_id: settings()), 0)
+    resumed = Engine(lambda feed_id: settings())
+    resumed.restore(feed, (Path(__file__).parent / "data" / "checkpoint_first_layout.bin").read_bytes(), 1)
+    out = drive(resumed, 601)
+    assert "rule states restored" in out.state_changes[0].detail
+    after = [ev for ev in whole.events if ev.end is not None or ev.start >= t0 + timedelta(minutes=601)]
+    assert [(ev.key, ev.end, ev.severity) for ev in out.events] == [(ev.key, ev.end, ev.severity) for ev in after]
+    assert out.events[0].rule == "spike" and out.events[0].start == t0 + timedelta(minutes=600)  # the saved episode
+    z_whole = np.array([inn.z for _, inn in whole.innovations[601 - 300:]])
+    z_resumed = np.array([inn.z for _, inn in out.innovations])
+    np.testing.assert_allclose(z_resumed, z_whole, rtol=1e-7, atol=1e-9)

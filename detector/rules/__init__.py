@@ -5,13 +5,19 @@ Pure code: no I/O. The public surface:
 Running the rules
     :class:`FeedMonitor`, :class:`MonitorConfig` - every rule of one feed, one
     reading at a time (range check, outlier insulation, re-anchoring after a
-    confirmed level shift); ``tick(now)`` for the stale rule.
+    confirmed level shift), each reading giving a :class:`StepResult`;
+    ``tick(now)`` for the stale rule; ``carry_over(old)`` after a refit.
+
+The contract and the registry
+    :class:`Rule` - what every rule does (:mod:`.contract`);
+    :class:`RuleEntry`, :class:`LimitKey` - what a rule declares to the
+    registry (:mod:`.registry`, the one list of rules).
 
 Choosing limits
     :func:`budget_thresholds` - limits from a tolerable false-alarm rate per
     feed and the training residuals; :func:`sigma_thresholds` - fixed limits;
-    :func:`validate_thresholds` - check a stored thresholds dict;
-    :func:`per_point_rate`.
+    both give :class:`AlarmLimits` (frozen; ``to_json``/``from_json``);
+    :func:`validate_thresholds` - check stored limits; :func:`per_point_rate`.
 
 The rules (each gives an :class:`Assessment` per step)
     :class:`SpikeRule`, :class:`CusumRule` (:class:`TabularCusum`, whose
@@ -32,11 +38,13 @@ advisory and never a safety function.
 """
 
 from .arl import cusum_arl, ewma_arl, shewhart_arl
+from .contract import LimitKey, Rule, RuleEntry
 from .cusum import CusumRule, CusumSignal, TabularCusum
 from .ewma import EwmaChart, EwmaRule
 from .flatline import FlatlineRule
 from .lifecycle import AlarmLifecycle, Assessment, LifecycleConfig
-from .monitor import FeedMonitor, MonitorConfig
+from .limits import AlarmLimits
+from .monitor import FeedMonitor, MonitorConfig, StepResult
 from .noise_burst import NoiseBurstRule
 from .range_check import RangeRule
 from .spike import SpikeRule
@@ -45,6 +53,7 @@ from .thresholds import budget_thresholds, per_point_rate, sigma_thresholds, val
 
 __all__ = [
     "AlarmLifecycle",
+    "AlarmLimits",
     "Assessment",
     "CusumRule",
     "CusumSignal",
@@ -53,11 +62,15 @@ __all__ = [
     "FeedMonitor",
     "FlatlineRule",
     "LifecycleConfig",
+    "LimitKey",
     "MonitorConfig",
     "NoiseBurstRule",
     "RangeRule",
+    "Rule",
+    "RuleEntry",
     "SpikeRule",
     "StaleRule",
+    "StepResult",
     "TabularCusum",
     "budget_thresholds",
     "cusum_arl",

@@ -49,7 +49,17 @@ import numpy as np
 
 from ..errors import RuleError
 from ..innovation import Innovation
-from .lifecycle import Assessment
+from .arl import cusum_h_for_arl
+from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry, check_state
+from .lifecycle import Assessment, LifecycleConfig
+from .tail_limits import empirical_cusum_h
+
+#: Default reference value k and decision interval h (sigma mode; with
+#: k = 0.5, h = 5 the in-control ARL is about 465 [from memory; :func:`.arl.cusum_arl` computes it]).
+DEFAULT_K = 0.5
+DEFAULT_H = 5.0
+#: Default winsorizing bound of z.
+DEFAULT_CLIP_ABS_Z = 3.0
 
 
 def cusum_step(s_hi, s_lo, z, k):
@@ -111,7 +121,7 @@ class TabularCusum:
         Winsorize z at +-this before adding it (None: no clipping).
     """
 
-    def __init__(self, k: float = 0.5, h: float = 4.0, head_start: float = 0.0,
+    def __init__(self, k: float = DEFAULT_K, h: float = DEFAULT_H, head_start: float = 0.0,
                  screen_abs_z: float | None = None, persist_abs_z: float = 2.0,
                  clip_abs_z: float | None = None) -> None:
         self.k = float(k)
@@ -133,11 +143,31 @@ class TabularCusum:
         self.screen_abs_z = None if screen_abs_z is None else float(screen_abs_z)
         self.persist_abs_z = float(persist_abs_z)
         self._calls = 0
+        self._held_call = 0
         self.reset()
 
     def parameters(self) -> dict[str, Any]:
         return {"k": self.k, "h": self.h, "head_start": self.head_start, "clip_abs_z": self.clip_abs_z,
                 "screen_abs_z": self.screen_abs_z, "persist_abs_z": self.persist_abs_z}
+
+    #: Layout version of :meth:`state_dict`.
+    STATE_VERSION = 1
+
+    def state_dict(self) -> dict[str, Any]:
+        """The sums, run counters, call count and any held-back reading, as plain JSON values."""
+        return {"v": self.STATE_VERSION, "calls": self._calls, "s_hi": self._s_hi, "s_lo": self._s_lo,
+                "n_hi": self._n_hi, "n_lo": self._n_lo, "start_hi": self._start_hi, "start_lo": self._start_lo,
+                "held": self._held, "held_call": self._held_call}
+
+    def load_state(self, state: Any) -> None:
+        """Take back a :meth:`state_dict` of a chart with the same settings."""
+        state = check_state(state, "rule 'cusum' chart", self.STATE_VERSION)
+        self._calls = int(state["calls"])
+        self._s_hi, self._s_lo = float(state["s_hi"]), float(state["s_lo"])
+        self._n_hi, self._n_lo = int(state["n_hi"]), int(state["n_lo"])
+        self._start_hi, self._start_lo = int(state["start_hi"]), int(state["start_lo"])
+        self._held = None if state["held"] is None else float(state["held"])
+        self._held_call = int(state["held_call"])
 
     @property
     def s_hi(self) -> float:
@@ -161,7 +191,7 @@ class TabularCusum:
         """Restart both sums from the head start and drop any held-back reading."""
         self._s_hi = self._s_lo = self.head_start
         self._n_hi = self._n_lo = 0
-        self._held: float | None = None
+        self._held = None
         self._start_hi = self._start_lo = self._calls + 1
 
     def _add(self, z: float, call: int) -> None:
@@ -216,7 +246,7 @@ class TabularCusum:
         return signal
 
 
-class CusumRule:
+class CusumRule(RuleBase):
     """The CUSUM as an alarm rule.
 
     Parameters
@@ -224,6 +254,9 @@ class CusumRule:
     cusum : TabularCusum
     clear_fraction : float
         Clear when max(S+, S-) <= clear_fraction * h (the deadband), in [0, 1].
+
+    The CUSUM restarts itself after each signal; a re-anchoring of the
+    level does not restart it.
     """
 
     name = "cusum"
@@ -237,6 +270,26 @@ class CusumRule:
 
     def parameters(self) -> dict[str, Any]:
         return {**self.cusum.parameters(), "clear_fraction": self.clear_fraction}
+
+    def reset(self) -> None:
+        """Restart the sums (as after a refit)."""
+        self.cusum.reset()
+
+    def skip_slot(self) -> None:
+        """Count a slot the rule does not see in the run length, as a missing reading."""
+        self.cusum.update(math.nan)
+
+    def status(self) -> dict[str, Any]:
+        return {"s_hi": self.cusum.s_hi, "s_lo": self.cusum.s_lo, "h": self.cusum.h}
+
+    def state_dict(self) -> dict[str, Any]:
+        """The chart's state; this step's signal is not state (each step sets it anew)."""
+        return {"v": self.STATE_VERSION, "chart": self.cusum.state_dict()}
+
+    def load_state(self, state: Any) -> None:
+        state = self._check_state(state)
+        self.cusum.load_state(state["chart"])
+        self.last_signal = None
 
     def assess(self, innovation: Innovation) -> Assessment | None:
         """Feed one innovation; ``last_signal`` holds this step's signal (or None)."""
@@ -257,3 +310,37 @@ class CusumRule:
         if self.cusum.holding:
             return Assessment(None, False, a)
         return Assessment(None, self.cusum.statistic <= self.clear_fraction * self.cusum.h, a)
+
+
+# ------------------------------------------------------------ registry entry
+def sigma_limits(options: dict[str, Any]) -> dict[str, Any]:
+    return {"k": float(options["cusum_k"]), "h": float(options["cusum_h"]), "clip_abs_z": options["cusum_clip_abs_z"]}
+
+
+def budget_limits(ctx: BudgetContext, options: dict[str, Any]) -> dict[str, Any]:
+    """h = max(h_G, h_E) for the rule's share of the budget (see :mod:`.thresholds`)."""
+    k, clip = options["cusum_k"], options["cusum_clip_abs_z"]
+    rate = ctx.rate * ctx.shares["cusum"]
+    h_gauss = cusum_h_for_arl(k, 1.0 / rate, clip=clip)
+    h_emp = empirical_cusum_h(ctx.calm, k, rate, h_gauss, seed=ctx.seed, clip_abs_z=clip)
+    return {"k": float(k), "h": max(h_gauss, h_emp), "clip_abs_z": clip, "gaussian_h": h_gauss, "empirical_h": h_emp}
+
+
+def build(section: Any, ctx: BuildContext) -> CusumRule:
+    # the CUSUM holds back what the stream does not absorb, until the next reading decides
+    return CusumRule(TabularCusum(section["k"], section["h"], section.get("head_start", 0.0),
+                                  screen_abs_z=ctx.insulation_abs_z, clip_abs_z=section.get("clip_abs_z")))
+
+
+ENTRY = RuleEntry(
+    name="cusum", kind="innovation", build=build,
+    # a drift makes the CUSUM confirm again every few steps after each
+    # re-anchoring; the off-delay keeps that inside one episode
+    lifecycle=LifecycleConfig(1, 1, 12),
+    budget_share=0.35,
+    limit_keys=(LimitKey("cusum_k", DEFAULT_K, low=0),
+                LimitKey("cusum_h", DEFAULT_H, low=0, low_open=True, modes=("sigma",)),
+                LimitKey("cusum_clip_abs_z", DEFAULT_CLIP_ABS_Z, low=0, low_open=True, winsorizing=True)),
+    required=("k", "h"),
+    sigma_limits=sigma_limits, budget_limits=budget_limits,
+)

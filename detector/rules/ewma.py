@@ -24,7 +24,12 @@ from typing import Any
 
 from ..errors import RuleError
 from ..innovation import Innovation
-from .lifecycle import Assessment
+from .arl import ewma_limit_for_arl
+from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry, check_state
+from .lifecycle import Assessment, LifecycleConfig
+
+#: Default limit L in units of sigma_E (sigma mode).
+DEFAULT_LIMIT_SIGMAS = 3.0
 
 
 def ewma_step(e, z, lam):
@@ -54,7 +59,7 @@ class EwmaChart:
         asymptotic ones.
     """
 
-    def __init__(self, lam: float = 0.1, limit_sigmas: float = 3.0, exact_limits: bool = False) -> None:
+    def __init__(self, lam: float = 0.1, limit_sigmas: float = DEFAULT_LIMIT_SIGMAS, exact_limits: bool = False) -> None:
         if not (0 < lam <= 1):
             raise RuleError(f"ewma lam must be in (0, 1], got {lam!r}")
         if not (math.isfinite(limit_sigmas) and limit_sigmas > 0):
@@ -80,6 +85,18 @@ class EwmaChart:
         self._e = 0.0
         self._steps = 0
 
+    #: Layout version of :meth:`state_dict`.
+    STATE_VERSION = 1
+
+    def state_dict(self) -> dict[str, Any]:
+        """E_t and the steps since the last restart, as plain JSON values."""
+        return {"v": self.STATE_VERSION, "average": self._e, "steps": self._steps}
+
+    def load_state(self, state: Any) -> None:
+        state = check_state(state, "rule 'ewma' chart", self.STATE_VERSION)
+        self._e = float(state["average"])
+        self._steps = int(state["steps"])
+
     def update(self, z: float) -> int:
         """Add one z (NaN skipped); return +1 / -1 on a signal (and restart), else 0."""
         if not math.isfinite(z):
@@ -94,8 +111,12 @@ class EwmaChart:
         return 0
 
 
-class EwmaRule:
-    """The EWMA chart as an alarm rule; clears when |E| <= clear_fraction * limit."""
+class EwmaRule(RuleBase):
+    """The EWMA chart as an alarm rule; clears when |E| <= clear_fraction * limit.
+
+    The average restarts after a re-anchoring of the level (it holds
+    innovations scored against the old level).
+    """
 
     name = "ewma"
 
@@ -107,6 +128,21 @@ class EwmaRule:
 
     def parameters(self) -> dict[str, Any]:
         return {**self.chart.parameters(), "clear_fraction": self.clear_fraction}
+
+    def reset(self) -> None:
+        self.chart.reset()
+
+    def level_moved(self) -> None:
+        self.chart.reset()
+
+    def status(self) -> dict[str, Any]:
+        return {"value": self.chart.value, "limit": self.chart.limit()}
+
+    def state_dict(self) -> dict[str, Any]:
+        return {"v": self.STATE_VERSION, "chart": self.chart.state_dict()}
+
+    def load_state(self, state: Any) -> None:
+        self.chart.load_state(self._check_state(state)["chart"])
 
     def assess(self, innovation: Innovation) -> Assessment | None:
         z = innovation.z
@@ -121,3 +157,32 @@ class EwmaRule:
             return Assessment("alarm", False, abs(z), detail)
         return Assessment(None, abs(self.chart.value) <= self.clear_fraction * self.chart.limit(), abs(z))
 
+
+
+# ------------------------------------------------------------ registry entry
+def sigma_limits(options: dict[str, Any]) -> dict[str, Any] | None:
+    lam = options["ewma_lam"]
+    return None if lam is None else {"lam": float(lam), "limit_sigmas": float(options["ewma_limit_sigmas"])}
+
+
+def budget_limits(ctx: BudgetContext, options: dict[str, Any]) -> dict[str, Any] | None:
+    """L for ARL_0 = 1 / p_r (Gaussian only); None while the chart is off."""
+    lam = options["ewma_lam"]
+    if lam is None:
+        return None
+    return {"lam": float(lam), "limit_sigmas": ewma_limit_for_arl(lam, 1.0 / (ctx.rate * ctx.shares["ewma"]))}
+
+
+def build(section: Any, ctx: BuildContext) -> EwmaRule | None:
+    return None if section is None else EwmaRule(EwmaChart(section["lam"], section["limit_sigmas"]))
+
+
+ENTRY = RuleEntry(
+    name="ewma", kind="innovation", build=build,
+    lifecycle=LifecycleConfig(1, 1, 12),
+    splits_share_of="cusum", enabled_by="ewma_lam",
+    limit_keys=(LimitKey("ewma_lam", None, low=0, low_open=True, high=1),
+                LimitKey("ewma_limit_sigmas", DEFAULT_LIMIT_SIGMAS, low=0, low_open=True, modes=("sigma",))),
+    required=("lam", "limit_sigmas"),
+    sigma_limits=sigma_limits, budget_limits=budget_limits,
+)

@@ -47,7 +47,11 @@ from typing import Any
 
 from ..errors import RuleError
 from ..innovation import Innovation
-from .lifecycle import Assessment
+from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry
+from .lifecycle import Assessment, LifecycleConfig
+
+#: Default run probability limit (sigma mode).
+DEFAULT_RUN_PROBABILITY_LIMIT = 1e-6
 
 _SQRT2 = math.sqrt(2.0)
 
@@ -89,7 +93,7 @@ def estimate_resolution(values) -> float:
     return float(gaps.min()) if gaps.size else 0.0
 
 
-class FlatlineRule:
+class FlatlineRule(RuleBase):
     """A run of repeated readings, judged by its probability under the model.
 
     Parameters
@@ -106,7 +110,8 @@ class FlatlineRule:
 
     name = "flatline"
 
-    def __init__(self, tolerance: float = 0.0, resolution: float = 0.0, run_probability_limit: float = 1e-6) -> None:
+    def __init__(self, tolerance: float = 0.0, resolution: float = 0.0,
+                 run_probability_limit: float = DEFAULT_RUN_PROBABILITY_LIMIT) -> None:
         if not (math.isfinite(tolerance) and tolerance >= 0):
             raise RuleError(f"flatline tolerance must be a finite number >= 0, got {tolerance!r}")
         if not (math.isfinite(resolution) and resolution >= 0):
@@ -139,6 +144,25 @@ class FlatlineRule:
         self._run = 0
         self._log_p = 0.0
 
+    def status(self) -> dict[str, Any]:
+        log_p = self._log_p
+        return {"run_steps": self._run, "log10_run_probability": log_p / math.log(10) if math.isfinite(log_p) else None}
+
+    def state_dict(self) -> dict[str, Any]:
+        """The previous reading, the run length and log P of the run, as plain JSON values.
+
+        log P is -inf after an impossible repeat; it is saved as None.
+        """
+        return {"v": self.STATE_VERSION, "previous": self._previous, "run_steps": self._run,
+                "log_run_probability": self._log_p if math.isfinite(self._log_p) else None}
+
+    def load_state(self, state: Any) -> None:
+        state = self._check_state(state)
+        self._previous = None if state["previous"] is None else float(state["previous"])
+        self._run = int(state["run_steps"])
+        log_p = state["log_run_probability"]
+        self._log_p = -math.inf if log_p is None else float(log_p)
+
     def assess(self, innovation: Innovation) -> Assessment | None:
         """Judge one reading against the previous one; None for a missing reading."""
         y = innovation.value
@@ -160,3 +184,30 @@ class FlatlineRule:
                       f"probability of such a run under the model {shown} < {self.run_probability_limit:.2g}")
             return Assessment("alarm", False, a, detail)
         return Assessment(None, False, a)
+
+
+# ------------------------------------------------------------ registry entry
+def sigma_limits(options: dict[str, Any]) -> dict[str, Any]:
+    return {"run_probability_limit": float(options["flatline_run_probability_limit"])}
+
+
+def budget_limits(ctx: BudgetContext, options: dict[str, Any]) -> dict[str, Any]:
+    """The limit is p_r itself; the training readings' quantization step is stored as the resolution."""
+    return {"run_probability_limit": ctx.rate * ctx.shares["flatline"],
+            "resolution": 0.0 if ctx.values is None else estimate_resolution(ctx.values)}
+
+
+def build(section: Any, ctx: BuildContext) -> FlatlineRule:
+    resolution = max(ctx.config.flatline_resolution, float(section.get("resolution", 0.0)))
+    return FlatlineRule(ctx.config.flatline_tolerance, resolution, section["run_probability_limit"])
+
+
+ENTRY = RuleEntry(
+    name="flatline", kind="innovation", build=build,
+    lifecycle=LifecycleConfig(1, 1, 1),
+    budget_share=0.15,
+    limit_keys=(LimitKey("flatline_run_probability_limit", DEFAULT_RUN_PROBABILITY_LIMIT, low=0, low_open=True,
+                         high=1, high_open=True, modes=("sigma",)),),
+    required=("run_probability_limit",),
+    sigma_limits=sigma_limits, budget_limits=budget_limits,
+)

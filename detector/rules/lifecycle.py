@@ -38,6 +38,7 @@ from typing import Any
 from ..errors import RuleError
 from ..events import AlarmEvent
 from ..innovation import Innovation
+from .contract import check_state, event_from_json, event_to_json
 
 #: Severities in increasing order.
 _RANK = {"warning": 1, "alarm": 2}
@@ -165,6 +166,21 @@ class AlarmLifecycle:
             "on_delay_hits": sum(self._window),
             "off_delay_count": self._clear_count,
         }
+
+    #: Layout version of :meth:`state_dict`.
+    STATE_VERSION = 1
+
+    def state_dict(self) -> dict[str, Any]:
+        """The running state (on-delay window, open episode, off-delay count) as plain JSON values."""
+        return {"v": self.STATE_VERSION, "on_delay_window": list(self._window),
+                "open_episode": event_to_json(self._event), "off_delay_count": self._clear_count}
+
+    def load_state(self, state: Any) -> None:
+        """Take back a :meth:`state_dict` of a lifecycle with the same settings."""
+        state = check_state(state, f"lifecycle of rule {self.rule!r}", self.STATE_VERSION)
+        self._window = deque((bool(x) for x in state["on_delay_window"]), maxlen=self.config.on_delay_n)
+        self._event = event_from_json(state["open_episode"])
+        self._clear_count = int(state["off_delay_count"])
 
     # ---------------------------------------------------------------- public
     def step(self, assessment: Assessment | None, when: datetime, innovation: Innovation | None = None,

@@ -16,8 +16,9 @@ For each reading :meth:`FeedMonitor.process` does, in order:
    that explains it better, the process itself took a step (an innovation
    outlier rather than a wild reading), the reading is absorbed and the
    rules see the shock view's innovation (see :meth:`FeedMonitor._shock_view`).
-4. **The rules** (spike, CUSUM, EWMA when configured, noise burst, flatline),
-   each through its own :class:`~.lifecycle.AlarmLifecycle`.
+4. **The rules**: the innovation rules of the registry (:mod:`.registry`:
+   spike, CUSUM, EWMA when configured, noise burst, flatline, in that
+   order), each through its own :class:`~.lifecycle.AlarmLifecycle`.
 5. **Re-anchoring**: when the CUSUM confirms a level shift, the forecasts
    are moved to the new level with ``stream.shift_level(delta)``, delta
    estimated from the run of innovations with the model's step response
@@ -33,7 +34,15 @@ For each reading :meth:`FeedMonitor.process` does, in order:
    reported, but does not re-anchor: a wider spread, not a new level,
    explains it.
 
+:meth:`FeedMonitor.process` returns a :class:`StepResult` (the events, the
+innovation, and whether the step re-anchored or left episodes open).
 :meth:`FeedMonitor.tick` drives the clock-based ``stale`` rule.
+:meth:`FeedMonitor.carry_over` continues the open episodes of the previous
+model's monitor after a refit. The monitor reaches its rules only through
+the contract of :mod:`.contract` (``skip_slot`` for an out-of-range slot,
+``level_moved`` after a re-anchoring), except the spike limits, which set
+the insulation and screening levels, and the CUSUM's signal, which drives
+the re-anchoring.
 
 Every event carries :data:`~leadline.detector.events.CAUTION`: the alarms
 are advisory.
@@ -43,105 +52,27 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from datetime import datetime
 from typing import Any
 
 import numpy as np
 
-from ..errors import DataError, RuleError
+from ..errors import DataError, RuleError, StateFormatError
 from ..events import AlarmEvent
 from ..innovation import Innovation
-from .cusum import CusumRule, TabularCusum
-from .ewma import EwmaChart, EwmaRule
-from .flatline import FlatlineRule
+from . import registry
+from .contract import BuildContext, check_state, innovation_from_json, innovation_to_json
 from .level_shift import estimate_level_shift
-from .lifecycle import AlarmLifecycle, LifecycleConfig
-from .noise_burst import NoiseBurstRule
-from .range_check import RangeRule
-from .spike import SpikeRule
-from .stale import StaleRule
-from .thresholds import sigma_thresholds, validate_thresholds
+from .lifecycle import AlarmLifecycle
+from .limits import AlarmLimits
+from .monitor_config import MonitorConfig, StepResult
 
 
-def _default_lifecycles() -> dict[str, LifecycleConfig]:
-    return {
-        # a short off-delay keeps a spike and its immediate neighbours, or the
-        # first readings of a large level shift, in one episode
-        "spike": LifecycleConfig(1, 1, 3),
-        # a drift makes the CUSUM confirm again every few steps after each
-        # re-anchoring; the off-delay keeps that inside one episode
-        "cusum": LifecycleConfig(1, 1, 12),
-        "ewma": LifecycleConfig(1, 1, 12),
-        "noise_burst": LifecycleConfig(1, 1, 3),
-        "flatline": LifecycleConfig(1, 1, 1),
-        "range": LifecycleConfig(1, 1, 1),
-        "stale": LifecycleConfig(1, 1, 1),
-    }
+__all__ = ["FeedMonitor", "MonitorConfig", "StepResult", "INNOVATION_RULES", "HISTORY_STEPS"]
 
-
-@dataclass
-class MonitorConfig:
-    """What to watch on one feed.
-
-    Parameters
-    ----------
-    thresholds : dict
-        Limits from :func:`~.thresholds.budget_thresholds` or
-        :func:`~.thresholds.sigma_thresholds` (default: sigma mode defaults).
-    interval_s : float or None
-        Nominal reading interval; enables the ``stale`` rule.
-    stale_missing_intervals : float
-        Silence, in nominal intervals, before ``stale`` is raised.
-    range_low, range_high : float or None
-        The engineering range; both None disables the ``range`` rule.
-    flatline_tolerance, flatline_resolution : float
-        See :class:`~.flatline.FlatlineRule`; the resolution used is the larger
-        of this and the one stored in the thresholds.
-    lifecycles : dict of str to LifecycleConfig
-        On-delay and off-delay per rule; missing names take the defaults.
-    insulate_outliers : bool
-        Score wild readings with ``absorb=False`` (see the module docstring).
-    insulation_abs_z : float or None
-        |z| from which a reading is not absorbed; None: the spike warning
-        limit. While a spike episode is open no reading is absorbed either.
-    shock_abs_z : float or None
-        The shock view (see :meth:`FeedMonitor._shock_view`) takes a reading
-        as following a process shock when its |z| in that view is below
-        this; None turns the shock view off.
-    reanchor : bool
-        Re-anchor the forecasts after a CUSUM-confirmed level shift.
-    confirmations : int
-        CUSUM signals in the same direction, within one open CUSUM episode,
-        needed before the forecasts are re-anchored (>= 1). A false signal
-        is rarely followed by another one soon; a real shift keeps
-        signalling. Re-anchoring on a false signal would create the very
-        offset it reports, and the next signal would move the level back.
-    settle_steps : int
-        Readings after a re-anchoring from which the new level is estimated
-        again, and corrected; 0 disables the correction.
-    rules : tuple of str or None
-        The innovation rules to run (default: all configured ones).
-    """
-
-    thresholds: dict[str, Any] = field(default_factory=sigma_thresholds)
-    interval_s: float | None = None
-    stale_missing_intervals: float = 5.0
-    range_low: float | None = None
-    range_high: float | None = None
-    flatline_tolerance: float = 0.0
-    flatline_resolution: float = 0.0
-    lifecycles: dict[str, LifecycleConfig] = field(default_factory=dict)
-    insulate_outliers: bool = True
-    insulation_abs_z: float | None = None
-    shock_abs_z: float | None = 2.0
-    reanchor: bool = True
-    confirmations: int = 2
-    settle_steps: int = 24
-    rules: tuple[str, ...] | None = None
-
-
-INNOVATION_RULES = ("spike", "cusum", "ewma", "noise_burst", "flatline")
+#: The innovation rules, in the order they are assessed.
+INNOVATION_RULES = registry.rule_names("innovation")
 #: Steps of innovations kept for estimating a confirmed level shift.
 HISTORY_STEPS = 1024
 
@@ -165,60 +96,52 @@ class FeedMonitor:
         self.feed_id = feed_id
         self.stream = stream
         self.config = config or MonitorConfig()
-        th = validate_thresholds(self.config.thresholds)
-        lifecycles = {**_default_lifecycles(), **self.config.lifecycles}
-        unknown = set(self.config.lifecycles) - set(_default_lifecycles())
+        th = AlarmLimits.of(self.config.thresholds)
+        defaults = registry.default_lifecycles()
+        lifecycles = {**defaults, **self.config.lifecycles}
+        unknown = set(self.config.lifecycles) - set(defaults)
         if unknown:
             raise RuleError(f"lifecycles: unknown rules {sorted(unknown)}")
-        wanted = set(INNOVATION_RULES if self.config.rules is None else self.config.rules)
-        bad = wanted - set(INNOVATION_RULES)
+        known = registry.rule_names("innovation")
+        wanted = set(known if self.config.rules is None else self.config.rules)
+        bad = wanted - set(known)
         if bad:
-            raise RuleError(f"rules: unknown innovation rules {sorted(bad)}; known: {INNOVATION_RULES}")
+            raise RuleError(f"rules: unknown innovation rules {sorted(bad)}; known: {known}")
 
-        sp = th["spike"]
-        self.spike = SpikeRule(sp["warning_abs_z"], sp["alarm_abs_z"], sp["clear_abs_z"])
-        screen = self.spike.alarm_abs_z
+        # the spike limits set the screen of the other rules and, by default, the insulation level
+        self.spike = registry.entry("spike").build(th["spike"], BuildContext(self.config))
         self.insulation_abs_z = (self.spike.warning_abs_z if self.config.insulation_abs_z is None
                                  else float(self.config.insulation_abs_z))
         if not self.insulation_abs_z > 0:
             raise RuleError(f"insulation_abs_z must be > 0, got {self.config.insulation_abs_z!r}")
-        # the CUSUM holds back what the stream does not absorb, until the next reading decides
-        self.cusum = CusumRule(TabularCusum(th["cusum"]["k"], th["cusum"]["h"],
-                                            th["cusum"].get("head_start", 0.0), screen_abs_z=self.insulation_abs_z,
-                                            clip_abs_z=th["cusum"].get("clip_abs_z")))
-        self.ewma = None
-        if th.get("ewma") is not None and "ewma" in wanted:
-            self.ewma = EwmaRule(EwmaChart(th["ewma"]["lam"], th["ewma"]["limit_sigmas"]))
-        nb = th["noise_burst"]
-        self.noise_burst = NoiseBurstRule(int(nb["window"]), nb["tail_probability"],
-                                          max(nb["tail_probability"], nb.get("clear_probability", 0.05)),
-                                          screen_abs_z=screen, clip_abs_z=nb.get("clip_abs_z"),
-                                          limit_scale=nb["limit_scale"])
-        resolution = max(self.config.flatline_resolution, float(th["flatline"].get("resolution", 0.0)))
-        self.flatline = FlatlineRule(self.config.flatline_tolerance, resolution,
-                                     th["flatline"]["run_probability_limit"])
-        self._rules: list[Any] = [r for r in (self.spike, self.cusum, self.ewma, self.noise_burst, self.flatline)
-                                  if r is not None and r.name in wanted]
-        self.range = None
-        if self.config.range_low is not None or self.config.range_high is not None:
-            self.range = RangeRule(self.config.range_low, self.config.range_high)
-        self.stale = None
-        if self.config.interval_s is not None:
-            self.stale = StaleRule(self.config.interval_s, self.config.stale_missing_intervals, last_seen)
-
-        self.lifecycles: dict[str, AlarmLifecycle] = {}
-        for rule in [*self._rules, self.range, self.stale]:
+        context = BuildContext(self.config, screen_abs_z=self.spike.alarm_abs_z,
+                               insulation_abs_z=self.insulation_abs_z, last_seen=last_seen)
+        #: The configured rules by name, in registry order.
+        self.rules: dict[str, Any] = {}
+        for entry in registry.RULES:
+            if entry.kind == "innovation" and entry.name not in wanted:
+                continue
+            rule = self.spike if entry.name == "spike" else entry.build(th.get(entry.name), context)
             if rule is not None:
-                self.lifecycles[rule.name] = AlarmLifecycle(feed_id, rule.name, rule.parameters(),
-                                                            lifecycles[rule.name])
+                self.rules[entry.name] = rule
+        self._innovation_rules = [rule for name, rule in self.rules.items()
+                                  if registry.entry(name).kind == "innovation"]
+        self.cusum = self.rules.get("cusum")
+        self.noise_burst = self.rules.get("noise_burst")
+        self.range = self.rules.get("range")
+        self.stale = self.rules.get("stale")
+
+        self.lifecycles: dict[str, AlarmLifecycle] = {
+            name: AlarmLifecycle(feed_id, name, rule.parameters(), lifecycles[name]) for name, rule in self.rules.items()}
         if isinstance(self.config.confirmations, bool) or not isinstance(self.config.confirmations, int) \
                 or self.config.confirmations < 1:
             raise RuleError(f"confirmations must be an integer >= 1, got {self.config.confirmations!r}")
         self.readings = 0
         self.not_absorbed = 0
         self.shocks = 0
-        # (forecast offset, variance) of the next slot had the last insulated reading been absorbed
-        self._pending_shock: tuple[float, float] | None = None
+        # (forecast offset, variance) of the next slot had the last insulated reading been absorbed:
+        # the candidate for the shock view
+        self._shock_candidate: tuple[float, float] | None = None
         self._last_absorbed = True
         self.reanchors = 0
         self.last_innovation: Innovation | None = None
@@ -227,21 +150,29 @@ class FeedMonitor:
         self._settle: list[tuple[float, float, bool]] | None = None
         self._settle_prior_se = 0.0
         self._steps = 0  # stream steps taken, the index of the history's last entry
-        self._pending: tuple[int, int, int] | None = None  # (direction, first step, signals) unconfirmed
+        # (direction, first step, signals) of CUSUM signals not yet confirmed
+        self._unconfirmed: tuple[int, int, int] | None = None
         self.last_reanchor: dict[str, Any] | None = None
 
     # ---------------------------------------------------------------- public
-    def process(self, value: float, timestamp: datetime) -> list[AlarmEvent]:
+    def process(self, value: float, timestamp: datetime) -> StepResult:
         """Score one reading (NaN for a missing slot) and run every rule.
 
         Returns
         -------
-        list of AlarmEvent
-            Onset and clearing events of this step (usually empty).
+        StepResult
+            The step's events (iterating the result gives them), its
+            innovation and the monitor's state after it.
         """
         if not isinstance(timestamp, datetime) or timestamp.tzinfo is None:
             raise DataError(f"feed {self.feed_id!r}: reading timestamp must be a timezone-aware datetime, "
                             f"got {timestamp!r}")
+        reanchors = self.reanchors
+        events = self._process(value, timestamp)
+        return StepResult(events, self.last_innovation, self.reanchors != reanchors,
+                          self.stream.level_offset, any(life.is_active for life in self.lifecycles.values()))
+
+    def _process(self, value: float, timestamp: datetime) -> list[AlarmEvent]:
         value = math.nan if value is None else float(value)
         self.readings += 1
         version = self.stream.model_version
@@ -261,7 +192,9 @@ class FeedMonitor:
                 self.last_innovation = self.stream.update(math.nan)
                 self._history.append((math.nan, self.last_innovation.std, False))
                 self._steps += 1
-                self.cusum.cusum.update(math.nan)
+                for name, rule in self.rules.items():
+                    if name != "range":
+                        rule.skip_slot()
                 return events
             events += life.step(verdict, timestamp, None, version)
 
@@ -278,13 +211,13 @@ class FeedMonitor:
             if not absorb:
                 io = self._shock_offset(peek)
         if not math.isnan(value):
-            self._pending_shock = None
+            self._shock_candidate = None
         inn = self.stream.update(value, absorb=absorb)
         if not math.isnan(value) and not absorb:
             self.not_absorbed += 1
             # only the first insulated reading of a run is open to the shock view:
             # two in a row already look like a shift, not a single shock
-            self._pending_shock = io if self._last_absorbed else None
+            self._shock_candidate = io if self._last_absorbed else None
         if not math.isnan(value):
             self._last_absorbed = absorb
         # the level-shift estimate models what the filter itself did, so the
@@ -303,7 +236,7 @@ class FeedMonitor:
         burst_before = self.lifecycles["noise_burst"].is_active if "noise_burst" in self.lifecycles else False
         signal = None
         burst_now = False
-        for rule in self._rules:
+        for rule in self._innovation_rules:
             verdict = rule.assess(inn)
             if rule is self.cusum:
                 signal = rule.last_signal
@@ -322,8 +255,8 @@ class FeedMonitor:
                 weight = prior / (prior + estimate.std_error ** 2) if prior > 0 else 1.0
                 self._reanchor(weight * estimate.delta, estimate, timestamp, "settled")
         cusum_life = self.lifecycles.get("cusum")
-        if self._pending is not None and (cusum_life is None or not cusum_life.is_active):
-            self._pending = None
+        if self._unconfirmed is not None and (cusum_life is None or not cusum_life.is_active):
+            self._unconfirmed = None
         return events
 
     def tick(self, now: datetime) -> list[AlarmEvent]:
@@ -343,40 +276,107 @@ class FeedMonitor:
         """The episodes open now, one per rule at most."""
         return [life.current for life in self.lifecycles.values() if life.current is not None]
 
+    def carry_over(self, old: "FeedMonitor", when: datetime) -> list[AlarmEvent]:
+        """Continue the open episodes of ``old``, the monitor of the previous model, in this one.
+
+        Called once, on a monitor just built for a new model (after a
+        refit): the statistics of the rules start afresh, but an episode
+        open in ``old`` stays open here (same event identity, its state
+        machine as it was), its rule now with this monitor's parameters.
+        An episode of a rule this monitor does not run is closed at
+        ``when``. The ``stale`` clock continues from ``old``'s last reading.
+
+        Returns
+        -------
+        list of AlarmEvent
+            The cleared events of the episodes closed here.
+        """
+        if old.stale is not None and self.stale is not None:
+            self.stale.last_seen = old.stale.last_seen
+        closed = []
+        for name, life in old.lifecycles.items():
+            if not life.is_active:
+                continue
+            if name in self.lifecycles:
+                life.parameters = self.lifecycles[name].parameters
+                self.lifecycles[name] = life
+            else:
+                closed.append(life.close(when, detail=f"{life.current.detail}; closed: model version "
+                                                      f"{self.stream.model_version} has no {name} rule"))
+        return closed
+
     def status(self) -> dict[str, Any]:
         """JSON-serialisable rule states and statistics, for display and the engine's state file."""
         rules = {name: life.status() for name, life in self.lifecycles.items()}
+        for name, rule in self.rules.items():
+            rules[name].update(rule.status())
         if "spike" in rules:
             last = self.last_innovation
             rules["spike"]["last_abs_z"] = abs(last.z) if last is not None and math.isfinite(last.z) else None
-        if "cusum" in rules:
-            rules["cusum"].update(s_hi=self.cusum.cusum.s_hi, s_lo=self.cusum.cusum.s_lo, h=self.cusum.cusum.h)
-        if "ewma" in rules:
-            rules["ewma"].update(value=self.ewma.chart.value, limit=self.ewma.chart.limit())
-        if "noise_burst" in rules:
-            rules["noise_burst"].update(sum_z2=self.noise_burst.statistic, valid=self.noise_burst.valid,
-                                        limit=(self.noise_burst.limit()
-                                               if math.isfinite(self.noise_burst.limit()) else None))
-        if "flatline" in rules:
-            rules["flatline"].update(run_steps=self.flatline.run_steps,
-                                     log10_run_probability=self.flatline.log_run_probability / math.log(10)
-                                     if math.isfinite(self.flatline.log_run_probability) else None)
-        if "stale" in rules:
-            due = self.stale.due()
-            rules["stale"]["due"] = due.isoformat() if due else None
         return {"feed_id": self.feed_id, "readings": self.readings, "not_absorbed": self.not_absorbed,
                 "shocks": self.shocks,
-                "reanchors": self.reanchors, "last_reanchor": self.last_reanchor, "level_offset": getattr(self.stream, "level_offset", None),
+                "reanchors": self.reanchors, "last_reanchor": self.last_reanchor,
+                "level_offset": getattr(self.stream, "level_offset", None),
                 "model_version": self.stream.model_version, "rules": rules}
 
-    def set_stream(self, stream: Any) -> None:
-        """Continue on a new model (after a refit): open episodes stay open, statistics restart."""
-        self.stream = stream
-        self.cusum.cusum.reset()
-        if self.ewma is not None:
-            self.ewma.chart.reset()
-        self.noise_burst.reset()
-        self.flatline.reset()
+    # ----------------------------------------------------------------- state
+    #: Layout version of :meth:`state_dict`.
+    STATE_VERSION = 1
+
+    def state_dict(self) -> dict[str, Any]:
+        """The running state of the monitor, its rules and their lifecycles, as plain JSON values.
+
+        Settings are not included: the state is loaded into a monitor built
+        from the same configuration (:meth:`MonitorConfig.fingerprint`).
+        """
+        return {
+            "v": self.STATE_VERSION,
+            "readings": self.readings, "not_absorbed": self.not_absorbed, "shocks": self.shocks,
+            "reanchors": self.reanchors, "last_reanchor": self.last_reanchor, "steps": self._steps,
+            "shock_candidate": None if self._shock_candidate is None else list(self._shock_candidate),
+            "last_absorbed": self._last_absorbed,
+            "last_innovation": innovation_to_json(self.last_innovation),
+            "history": [list(row) for row in self._history],
+            "settle": None if self._settle is None else [list(row) for row in self._settle],
+            "settle_prior_se": self._settle_prior_se,
+            "unconfirmed": None if self._unconfirmed is None else list(self._unconfirmed),
+            "rules": {name: rule.state_dict() for name, rule in self.rules.items()},
+            "lifecycles": {name: life.state_dict() for name, life in self.lifecycles.items()},
+        }
+
+    def load_state(self, state: Any) -> None:
+        """Take back a :meth:`state_dict` into this monitor (built with the same configuration).
+
+        Raises
+        ------
+        StateFormatError
+            An unknown version, or rules that differ from this monitor's.
+        """
+        state = check_state(state, f"monitor of feed {self.feed_id!r}", self.STATE_VERSION)
+        for part, mine in (("rules", self.rules), ("lifecycles", self.lifecycles)):
+            if set(state[part]) != set(mine):
+                raise StateFormatError(f"saved monitor state holds {part} {sorted(state[part])}, "
+                                       f"this monitor has {sorted(mine)}")
+        self.readings = int(state["readings"])
+        self.not_absorbed = int(state["not_absorbed"])
+        self.shocks = int(state["shocks"])
+        self.reanchors = int(state["reanchors"])
+        self.last_reanchor = None if state["last_reanchor"] is None else dict(state["last_reanchor"])
+        self._steps = int(state["steps"])
+        candidate = state["shock_candidate"]
+        self._shock_candidate = None if candidate is None else (float(candidate[0]), float(candidate[1]))
+        self._last_absorbed = bool(state["last_absorbed"])
+        self.last_innovation = innovation_from_json(state["last_innovation"])
+        self._history = deque((_history_row(row) for row in state["history"]), maxlen=HISTORY_STEPS)
+        settle = state["settle"]
+        self._settle = None if settle is None else [_history_row(row) for row in settle]
+        self._settle_prior_se = float(state["settle_prior_se"])
+        unconfirmed = state["unconfirmed"]
+        self._unconfirmed = None if unconfirmed is None else tuple(int(x) for x in unconfirmed)
+        for name, rule in self.rules.items():
+            rule.load_state(state["rules"][name])
+        for name, life in self.lifecycles.items():
+            life.load_state(state["lifecycles"][name])
 
     # ------------------------------------------------------------- internals
     def _shock_offset(self, peek: Innovation) -> tuple[float, float]:
@@ -409,10 +409,10 @@ class FeedMonitor:
         and the rules see the absorbed view's innovation. Only the first
         insulated reading of a run is judged this way.
         """
-        pending = self._pending_shock
-        if pending is None or self.config.shock_abs_z is None or not math.isfinite(peek.z):
+        candidate = self._shock_candidate
+        if candidate is None or self.config.shock_abs_z is None or not math.isfinite(peek.z):
             return None
-        offset, variance = pending
+        offset, variance = candidate
         if offset == 0.0 or not variance > 0:
             return None
         sd = math.sqrt(variance)
@@ -429,17 +429,17 @@ class FeedMonitor:
         """Decide whether a CUSUM signal re-anchors the forecasts (see the module docstring)."""
         start = self._steps - signal.run_calls + 1
         if burst:
-            self._pending = None
+            self._unconfirmed = None
             return
-        if self._pending is not None and self._pending[0] == signal.direction:
-            direction, first, count = self._pending
+        if self._unconfirmed is not None and self._unconfirmed[0] == signal.direction:
+            direction, first, count = self._unconfirmed
             count += 1
         else:
             direction, first, count = signal.direction, start, 1
         if count < self.config.confirmations:
-            self._pending = (direction, first, count)
+            self._unconfirmed = (direction, first, count)
             return
-        self._pending = None
+        self._unconfirmed = None
         history = list(self._history)
         run = history[max(0, len(history) - (self._steps - first + 1)):]
         estimate = estimate_level_shift(self.stream.system, self.stream.cov, run)
@@ -455,6 +455,10 @@ class FeedMonitor:
         self.reanchors += 1
         self.last_reanchor = {"time": when.isoformat(), "stage": stage, "delta": delta,
                               "shift_estimate": estimate.size, "std_error": estimate.std_error}
-        if self.ewma is not None:
-            self.ewma.chart.reset()
-        self.noise_burst.reset()
+        for rule in self.rules.values():
+            rule.level_moved()
+
+
+def _history_row(row: Any) -> tuple[float, float, bool]:
+    z, std, absorbed = row
+    return (math.nan if z is None else float(z), math.nan if std is None else float(std), bool(absorbed))

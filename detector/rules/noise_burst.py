@@ -63,7 +63,15 @@ from scipy.stats import norm
 
 from ..errors import RuleError
 from ..innovation import Innovation
-from .lifecycle import Assessment
+from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry
+from .lifecycle import Assessment, LifecycleConfig
+from .tail_limits import noise_limit_scale
+
+#: Defaults: window w, raise and clear tail probabilities, winsorizing bound.
+DEFAULT_WINDOW = 24
+DEFAULT_TAIL_PROBABILITY = 1e-4
+DEFAULT_CLEAR_PROBABILITY = 0.05
+DEFAULT_CLIP_ABS_Z = 4.0
 
 
 def successive_difference_weights(n: int) -> np.ndarray:
@@ -134,7 +142,7 @@ def successive_difference_statistic(values) -> float:
     return 0.5 * math.fsum((b - a) ** 2 for a, b in zip(values, values[1:]))
 
 
-class NoiseBurstRule:
+class NoiseBurstRule(RuleBase):
     """The spread of z over ``window`` steps, by successive differences, against its tail quantile.
 
     Parameters
@@ -155,11 +163,15 @@ class NoiseBurstRule:
     min_valid : int or None
         Assess only when the window holds at least this many valid values
         (default w // 2).
+
+    The window restarts after a re-anchoring of the level (it holds
+    innovations scored against the old level).
     """
 
     name = "noise_burst"
 
-    def __init__(self, window: int = 24, tail_probability: float = 1e-4, clear_probability: float = 0.05,
+    def __init__(self, window: int = DEFAULT_WINDOW, tail_probability: float = DEFAULT_TAIL_PROBABILITY,
+                 clear_probability: float = DEFAULT_CLEAR_PROBABILITY,
                  screen_abs_z: float | None = None, clip_abs_z: float | None = None, limit_scale: float = 1.0,
                  min_valid: int | None = None) -> None:
         if isinstance(window, bool) or not isinstance(window, int) or window < 3:
@@ -215,10 +227,30 @@ class NoiseBurstRule:
         self._q = 0.0
         self._valid = 0
 
+    def level_moved(self) -> None:
+        self.reset()
+
+    def status(self) -> dict[str, Any]:
+        limit = self.limit()
+        return {"sum_z2": self.statistic, "valid": self.valid, "limit": limit if math.isfinite(limit) else None}
+
+    def state_dict(self) -> dict[str, Any]:
+        """The window's values (None where a reading was screened out), as plain JSON values."""
+        return {"v": self.STATE_VERSION, "window": list(self._values)}
+
+    def load_state(self, state: Any) -> None:
+        state = self._check_state(state)
+        self.reset()
+        self._values.extend(None if v is None else float(v) for v in state["window"])
+        self._recount()
+
     def _push(self, z: float | None) -> None:
         self._values.append(z)
         if len(self._values) > self.window:
             self._values.popleft()
+        self._recount()
+
+    def _recount(self) -> None:
         valid = [v for v in self._values if v is not None]
         self._valid = len(valid)
         self._q = successive_difference_statistic(valid)
@@ -244,3 +276,38 @@ class NoiseBurstRule:
                       f"at tail probability {self.tail_probability:.2g})")
             return Assessment("alarm", False, a, detail)
         return Assessment(None, q < self._clear[n], a)
+
+
+# ------------------------------------------------------------ registry entry
+def sigma_limits(options: dict[str, Any]) -> dict[str, Any]:
+    return {"window": int(options["noise_window"]), "tail_probability": float(options["noise_tail_probability"]),
+            "clip_abs_z": options["noise_clip_abs_z"], "limit_scale": 1.0}
+
+
+def budget_limits(ctx: BudgetContext, options: dict[str, Any]) -> dict[str, Any]:
+    """Tail probability p_r; ``limit_scale`` from resampled windows (see :mod:`.thresholds`)."""
+    window, clip = int(options["noise_window"]), options["noise_clip_abs_z"]
+    rate = ctx.rate * ctx.shares["noise_burst"]
+    return {"window": window, "tail_probability": rate, "clip_abs_z": clip,
+            "limit_scale": noise_limit_scale(ctx.calm, window, rate, clip, seed=ctx.seed)}
+
+
+def build(section: Any, ctx: BuildContext) -> NoiseBurstRule:
+    tail = section["tail_probability"]
+    return NoiseBurstRule(int(section["window"]), tail,
+                          max(tail, section.get("clear_probability", DEFAULT_CLEAR_PROBABILITY)),
+                          screen_abs_z=ctx.screen_abs_z, clip_abs_z=section.get("clip_abs_z"),
+                          limit_scale=section["limit_scale"])
+
+
+ENTRY = RuleEntry(
+    name="noise_burst", kind="innovation", build=build,
+    lifecycle=LifecycleConfig(1, 1, 3),
+    budget_share=0.15,
+    limit_keys=(LimitKey("noise_window", DEFAULT_WINDOW, low=3, integer=True),
+                LimitKey("noise_tail_probability", DEFAULT_TAIL_PROBABILITY, low=0, low_open=True,
+                         high=MAX_PROBABILITY, modes=("sigma",)),
+                LimitKey("noise_clip_abs_z", DEFAULT_CLIP_ABS_Z, low=0, low_open=True, winsorizing=True)),
+    required=("window", "tail_probability", "limit_scale"),
+    sigma_limits=sigma_limits, budget_limits=budget_limits,
+)

@@ -12,16 +12,19 @@ import math
 from typing import Any
 
 from ..errors import RuleError
-from .lifecycle import Assessment
+from .contract import BuildContext, RuleBase, RuleEntry
+from .lifecycle import Assessment, LifecycleConfig
 
 
-class RangeRule:
+class RangeRule(RuleBase):
     """low <= reading <= high, either bound optional; an infinite reading is always out of range.
 
     Parameters
     ----------
     low, high : float or None
         The physically possible range, in reading units (inclusive).
+
+    The rule holds no running state.
     """
 
     name = "range"
@@ -63,3 +66,13 @@ class RangeRule:
         else:
             where = f"above the engineering range high {self.high:g}"
         return Assessment("alarm", False, math.nan, f"reading {value:.6g} is {where}; not fed to the model")
+
+
+def build(section: Any, ctx: BuildContext) -> RangeRule | None:
+    config = ctx.config
+    if config.range_low is None and config.range_high is None:
+        return None
+    return RangeRule(config.range_low, config.range_high)
+
+
+ENTRY = RuleEntry(name="range", kind="value", build=build, lifecycle=LifecycleConfig(1, 1, 1))

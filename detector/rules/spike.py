@@ -25,10 +25,19 @@ from typing import Any
 
 from ..errors import RuleError
 from ..innovation import Innovation
-from .lifecycle import Assessment
+from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry
+from .lifecycle import Assessment, LifecycleConfig
+from .tail_limits import empirical_abs_limit, gaussian_abs_limit
+
+#: Default limits (sigma mode).
+DEFAULT_WARNING_ABS_Z = 4.0
+DEFAULT_ALARM_ABS_Z = 5.0
+#: Default clear level as a fraction of the warning limit (common practice: a
+#: deadband of a few tenths of the limit).
+CLEAR_FRACTION = 0.75
 
 
-class SpikeRule:
+class SpikeRule(RuleBase):
     """|z_t| against a warning and an alarm limit.
 
     Parameters
@@ -38,16 +47,19 @@ class SpikeRule:
     alarm_abs_z : float
         Raise an alarm when |z_t| >= this (>= ``warning_abs_z``).
     clear_abs_z : float, optional
-        Clear when |z_t| < this (<= ``warning_abs_z``). Default: 0.75 of the
-        warning limit (common practice: a deadband of a few tenths of the limit).
+        Clear when |z_t| < this (<= ``warning_abs_z``). Default:
+        :data:`CLEAR_FRACTION` of the warning limit.
+
+    The rule holds no running state.
     """
 
     name = "spike"
 
-    def __init__(self, warning_abs_z: float = 4.0, alarm_abs_z: float = 5.0, clear_abs_z: float | None = None):
+    def __init__(self, warning_abs_z: float = DEFAULT_WARNING_ABS_Z, alarm_abs_z: float = DEFAULT_ALARM_ABS_Z,
+                 clear_abs_z: float | None = None):
         self.warning_abs_z = float(warning_abs_z)
         self.alarm_abs_z = float(alarm_abs_z)
-        self.clear_abs_z = 0.75 * self.warning_abs_z if clear_abs_z is None else float(clear_abs_z)
+        self.clear_abs_z = CLEAR_FRACTION * self.warning_abs_z if clear_abs_z is None else float(clear_abs_z)
         if not (math.isfinite(self.warning_abs_z) and self.warning_abs_z > 0):
             raise RuleError(f"spike warning_abs_z must be a finite number > 0, got {warning_abs_z!r}")
         if not (math.isfinite(self.alarm_abs_z) and self.alarm_abs_z >= self.warning_abs_z):
@@ -83,3 +95,50 @@ class SpikeRule:
                       f"{innovation.forecast:.6g} (|z| >= {severity} limit {limit:.3g})")
             return Assessment(severity, False, a, detail)
         return Assessment(None, a < self.clear_abs_z, a)
+
+
+# ------------------------------------------------------------ registry entry
+def sigma_limits(options: dict[str, Any]) -> dict[str, Any]:
+    warning = options["warning_abs_z"]
+    clear = options["clear_abs_z"]
+    return {"warning_abs_z": float(warning), "alarm_abs_z": float(options["alarm_abs_z"]),
+            "clear_abs_z": float(CLEAR_FRACTION * warning if clear is None else clear)}
+
+
+def budget_limits(ctx: BudgetContext, options: dict[str, Any]) -> dict[str, Any]:
+    """Warning at rate p_r, alarm at p_r * alarm_rate_ratio; the larger of the Gaussian and empirical limits."""
+    ratio = options["alarm_rate_ratio"]
+    if not 0 < ratio <= 1:
+        raise RuleError(f"alarm_rate_ratio must be in (0, 1], got {ratio!r}")
+    ctx.budget["alarm_rate_ratio"] = float(ratio)
+    share = ctx.shares.get("spike", 0.0)
+    spike: dict[str, Any] = {}
+    for level, rate in (("warning", ctx.rate * share), ("alarm", ctx.rate * share * ratio)):
+        gauss = gaussian_abs_limit(rate)
+        emp, method = empirical_abs_limit(ctx.abs_z, rate, ctx.confidence, seed=ctx.seed)
+        spike[f"gaussian_{level}_abs_z"] = gauss
+        spike[f"empirical_{level}_abs_z"] = None if math.isnan(emp) else emp
+        spike[f"{level}_abs_z"] = gauss if math.isnan(emp) else max(gauss, emp)
+        spike[f"{level}_method"] = method
+    spike["alarm_abs_z"] = max(spike["alarm_abs_z"], spike["warning_abs_z"])
+    spike["clear_abs_z"] = CLEAR_FRACTION * spike["warning_abs_z"]
+    return spike
+
+
+def build(section: Any, ctx: BuildContext) -> SpikeRule:
+    return SpikeRule(section["warning_abs_z"], section["alarm_abs_z"], section["clear_abs_z"])
+
+
+ENTRY = RuleEntry(
+    name="spike", kind="innovation", build=build,
+    # a short off-delay keeps a spike and its immediate neighbours, or the
+    # first readings of a large level shift, in one episode
+    lifecycle=LifecycleConfig(1, 1, 3),
+    budget_share=0.35,
+    limit_keys=(LimitKey("warning_abs_z", DEFAULT_WARNING_ABS_Z, low=0, low_open=True, modes=("sigma",)),
+                LimitKey("alarm_abs_z", DEFAULT_ALARM_ABS_Z, low=0, low_open=True, modes=("sigma",)),
+                LimitKey("clear_abs_z", None, low=0, low_open=True, modes=("sigma",)),
+                LimitKey("alarm_rate_ratio", 0.1, low=0, low_open=True, high=1, modes=("budget",))),
+    required=("warning_abs_z", "alarm_abs_z", "clear_abs_z"),
+    sigma_limits=sigma_limits, budget_limits=budget_limits,
+)

@@ -17,10 +17,14 @@ from datetime import datetime, timedelta
 from typing import Any
 
 from ..errors import RuleError
-from .lifecycle import Assessment
+from .contract import BuildContext, RuleBase, RuleEntry, time_from_json, time_to_json
+from .lifecycle import Assessment, LifecycleConfig
+
+#: Default silence, in nominal intervals, before ``stale`` is raised.
+DEFAULT_STALE_INTERVALS = 5.0
 
 
-class StaleRule:
+class StaleRule(RuleBase):
     """Silence longer than ``missing_intervals`` nominal intervals.
 
     Parameters
@@ -36,7 +40,8 @@ class StaleRule:
 
     name = "stale"
 
-    def __init__(self, interval_s: float, missing_intervals: float = 5.0, last_seen: datetime | None = None) -> None:
+    def __init__(self, interval_s: float, missing_intervals: float = DEFAULT_STALE_INTERVALS,
+                 last_seen: datetime | None = None) -> None:
         if not (math.isfinite(interval_s) and interval_s > 0):
             raise RuleError(f"stale interval_s must be a finite number > 0, got {interval_s!r}")
         if not (math.isfinite(missing_intervals) and missing_intervals > 0):
@@ -53,6 +58,17 @@ class StaleRule:
 
     def parameters(self) -> dict[str, Any]:
         return {"interval_s": self.interval_s, "missing_intervals": self.missing_intervals}
+
+    def status(self) -> dict[str, Any]:
+        due = self.due()
+        return {"due": due.isoformat() if due else None}
+
+    def state_dict(self) -> dict[str, Any]:
+        """The time of the last reading with a value (ISO 8601), as plain JSON values."""
+        return {"v": self.STATE_VERSION, "last_seen": time_to_json(self.last_seen)}
+
+    def load_state(self, state: Any) -> None:
+        self.last_seen = time_from_json(self._check_state(state)["last_seen"])
 
     def seen(self, timestamp: datetime) -> None:
         """Note a reading with a value at ``timestamp`` (an older one is ignored)."""
@@ -73,3 +89,13 @@ class StaleRule:
                   f"{self.interval_s:g} s; limit {self.missing_intervals:g}); last reading at "
                   f"{self.last_seen.isoformat()}")
         return Assessment("alarm", False, math.nan, detail), due
+
+
+def build(section: Any, ctx: BuildContext) -> StaleRule | None:
+    config = ctx.config
+    if config.interval_s is None:
+        return None
+    return StaleRule(config.interval_s, config.stale_intervals, ctx.last_seen)
+
+
+ENTRY = RuleEntry(name="stale", kind="clock", build=build, lifecycle=LifecycleConfig(1, 1, 1))

@@ -174,7 +174,7 @@ def leadline_events(model, thresholds, values: np.ndarray) -> list[int]:
     """Steps at which leadline events start (any rule, any severity)."""
     monitor = FeedMonitor("bench", model.stream(),
                           MonitorConfig(thresholds=thresholds, interval_s=INTERVAL_S,
-                                        stale_missing_intervals=STALE_INTERVALS, range_low=0.0, **MONITOR_OPTIONS))
+                                        stale_intervals=STALE_INTERVALS, range_low=0.0, **MONITOR_OPTIONS))
     starts: list[int] = []
     for i, v in enumerate(values):
         now = T0 + timedelta(seconds=INTERVAL_S * i)
