@@ -26,12 +26,15 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
+from statsmodels.tsa.stattools import kpss
 
 from .errors import FitError, SpecError
+from .estimation import fit_spec
+from .harmonic_selection import choose_harmonics
 from .spec import ModelSpec
 
 KPSS_ALPHA = 0.05
@@ -95,8 +98,6 @@ def _sort_key(c: Candidate) -> tuple[int, float]:
 
 def kpss_pvalue(x: np.ndarray) -> tuple[float, float]:
     """KPSS level-stationarity statistic and p-value (p is clipped to [0.01, 0.1])."""
-    from statsmodels.tsa.stattools import kpss
-
     with warnings.catch_warnings():
         # statsmodels warns when p falls outside its table and clips it; the
         # clipped value is all the decision needs.
@@ -137,8 +138,6 @@ def _near_unit_root(fitted) -> bool:
 
 
 def _evaluate(y, spec, tried, fit_kwargs) -> Candidate:
-    from .fitting import fit_spec
-
     key = (spec.order, spec.seasonal, spec.trend)
     if key in tried:
         return tried[key]
@@ -266,8 +265,6 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
     tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=max_fits)
     extra: dict[str, Any] = {}
     if calendar is not None:
-        from .seasonality import choose_harmonics
-
         epoch = np.asarray(timestamps_epoch_s, dtype=float)
         if not calendar.is_resolved:
             base = ModelSpec((1, 0, 1), trend="c")
@@ -308,8 +305,6 @@ def _calendar_text(calendar) -> str:
 
 
 def _with_selection(fitted, selection):
-    from dataclasses import replace
-
     for c in selection.candidates:
         c.fitted = None  # keep the table light; the winner is returned
     return replace(fitted, selection=selection)

@@ -53,6 +53,7 @@ from scipy.stats import norm
 
 from .errors import StateFormatError
 from .innovation import Innovation
+from .seasonality import regression_from_dict
 from .statespace import LinearSystem
 
 #: Slots of d_t computed at a time for a stream with calendar terms.
@@ -400,8 +401,6 @@ class Stream:
             raise StateFormatError(f"stream state is corrupt: {exc}") from exc
         regression = None
         if header.get("regression") is not None:
-            from .seasonality import regression_from_dict
-
             regression = regression_from_dict(header["regression"])
         return cls(
             system,
