@@ -83,6 +83,10 @@ class FittedModel:
         The grid of the fitted window, with calendar terms.
     harmonics_table : tuple of dict
         The AICc of each number of harmonics tried, when K was chosen.
+    advice : tuple of FitProblem
+        ``problems`` with the likely remedy of each (:mod:`.fit_diagnostics`).
+    treatment : str
+        How a degenerate window was handled (constant, quantized), or "".
     """
 
     spec: ModelSpec
@@ -108,10 +112,19 @@ class FittedModel:
     origin_epoch_s: float | None = None
     interval_s: float | None = None
     harmonics_table: tuple = ()
+    advice: tuple = ()
+    treatment: str = ""
 
     @property
     def is_poor(self) -> bool:
         return bool(self.problems)
+
+    @property
+    def description(self) -> str:
+        """The chosen form in words, e.g. ``"daily cycle, 3 harmonics; AR(1) + const"``."""
+        if self.calendar is None:
+            return self.spec.label
+        return f"{self.calendar.description}; {self.spec.label}"
 
     def stream(self, *, level: float = 0.95, model_version: int | None = None) -> Stream:
         """A :class:`Stream` positioned right after the last fitted slot."""
@@ -147,7 +160,12 @@ class FittedModel:
             "converged": self.converged,
             "warnings": list(self.warnings),
             "problems": list(self.problems),
+            "description": self.description,
         }
+        if self.advice:
+            out["advice"] = [p.to_dict() for p in self.advice]
+        if self.treatment:
+            out["treatment"] = self.treatment
         if self.selection is not None:
             out["selection"] = self.selection.to_dict()
         if self.calendar is not None:

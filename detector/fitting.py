@@ -34,7 +34,8 @@ __all__ = ["FittedModel", "as_series", "fit", "fit_sarimax", "fit_spec", "ljung_
 
 
 def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_epoch_s: Any = None,
-        seasonal_period: int | None = None) -> FittedModel:
+        seasonal_period: int | None = None, interval_s: float | None = None, timezone: str | None = None,
+        find_cycles: bool = True) -> FittedModel:
     """Fit ``spec`` (or choose one with ``"auto"``) to ``values``.
 
     Parameters
@@ -48,10 +49,19 @@ def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_
     timestamps_epoch_s : array_like, optional
         Epoch seconds of the slots; required with ``calendar``. When a
         period's number of harmonics is not given, it is chosen by AICc
-        and the table is kept in ``harmonics_table``.
+        and the table is kept in ``harmonics_table``. With "auto" and no
+        calendar, the daily and weekly cycles are looked for
+        (:func:`.order_selection.select_order`).
     seasonal_period : int, optional
         With "auto": a short period s (<= 24 slots) for which seasonal
         differencing is also tried.
+    interval_s : float, optional
+        The grid's interval, when no timestamps are given; it lets the
+        residual checks look at the daily lag.
+    timezone : str, optional
+        IANA time zone of the cycles "auto" finds (default UTC).
+    find_cycles : bool
+        With "auto": look for daily and weekly cycles (default True).
 
     Returns
     -------
@@ -63,16 +73,20 @@ def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_
         Too few readings, or statsmodels failed outright.
     """
     y = as_series(values)
+    epoch = None if timestamps_epoch_s is None else np.asarray(timestamps_epoch_s, dtype=float)
+    if epoch is not None and epoch.shape != y.shape:
+        raise FitError(f"timestamps shape {epoch.shape} does not match values shape {y.shape}")
+    if epoch is not None and epoch.size > 1:
+        interval_s = float(epoch[1] - epoch[0])
     if isinstance(spec, str):
         if spec != "auto":
             raise FitError(f"spec must be a ModelSpec or 'auto', got {spec!r}")
-        return select_order(y, calendar=calendar, timestamps_epoch_s=timestamps_epoch_s,
-                            seasonal_period=seasonal_period)
+        return select_order(y, calendar=calendar, timestamps_epoch_s=epoch, seasonal_period=seasonal_period,
+                            interval_s=interval_s, timezone=timezone, find_cycles=find_cycles)
     if calendar is not None and not calendar.is_resolved:
-        epoch = np.asarray(timestamps_epoch_s, dtype=float)
+        if epoch is None:
+            raise FitError("calendar terms need the slots' timestamps")
         calendar, table = choose_harmonics(y, epoch, spec, calendar)
         fitted = fit_spec(y, spec, calendar=calendar, timestamps_epoch_s=epoch)
         return replace(fitted, harmonics_table=tuple(table))
-    return fit_spec(y, spec, calendar=calendar, timestamps_epoch_s=timestamps_epoch_s)
-
-
+    return fit_spec(y, spec, calendar=calendar, timestamps_epoch_s=epoch, interval_s=interval_s)
