@@ -24,7 +24,7 @@ from typing import Any, Iterable, Mapping
 from leadline.detector.errors import SpecError
 from leadline.detector.rules.monitor import INNOVATION_RULES
 from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
-from leadline.detector.seasonality import SeasonalPeriod
+from leadline.detector.seasonality import SeasonalPeriod, zone_info
 from leadline.detector.spec import ModelSpec
 
 from .config_values import (
@@ -56,6 +56,7 @@ BUILTIN_DEFAULTS: dict[str, Any] = {
     "weekend": False,
     "holidays": [],
     "utc_offset_s": 0.0,
+    "timezone": None,
     "interval_s": None,
     "train_points": 2000,
     "train_span_s": 14 * 86400.0,
@@ -177,6 +178,17 @@ def _utc_offset_s(value: Any) -> float:
     return seconds
 
 
+def _timezone(value: Any) -> str:
+    expected = 'an IANA time zone such as "Europe/London" or "UTC"'
+    if not isinstance(value, str):
+        raise Bad(expected)
+    try:
+        zone_info(value)
+    except SpecError as exc:
+        raise Bad(expected, "not in the IANA tz database") from exc
+    return value
+
+
 def _interval_s(value: Any) -> float | None:
     if value == "auto":
         return None
@@ -193,6 +205,7 @@ FEED_CHECKS: dict[str, Checker] = {
     "weekend": boolean,
     "holidays": list_of(_holiday, what="dates"),
     "utc_offset": _utc_offset_s,
+    "timezone": _timezone,
     "interval": _interval_s,
     "train_points": integer(MIN_TRAIN_POINTS),
     "train_span": duration_s,
@@ -351,6 +364,9 @@ def cross_check(resolved: Mapping[str, Any], layers: list[tuple[str, Mapping[str
     if rules is not None and "ewma" in rules and "ewma_lam" not in limits:
         problems.error(_where("rules", layers),
                        f'includes "ewma", which needs limits.ewma_lam (for example 0.2){suffix}')
+    if resolved["timezone"] is not None and resolved["utc_offset_s"]:
+        problems.error(_where("timezone", layers),
+                       f"timezone and utc_offset do not go together; give the time zone{suffix}")
     if resolved["seasonality"] and resolved["model"] != "auto" and resolved["model"].get("seasonal"):
         problems.error(_where("seasonality", layers),
                        "calendar cycles and a seasonal ARIMA part (model.seasonal) do not go together; "

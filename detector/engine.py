@@ -418,9 +418,11 @@ def run_refit(request: RefitRequest) -> FittedModel:
         :meth:`Engine.refit_failed`.
     """
     calendar = request.calendar
+    wants_times = calendar is not None or request.spec == "auto"  # "auto" looks for daily/weekly cycles
     return fit(request.values, request.spec, calendar=calendar,
-               timestamps_epoch_s=request.epoch_s if calendar is not None else None,
-               seasonal_period=request.seasonal_period)
+               timestamps_epoch_s=request.epoch_s if wants_times else None,
+               seasonal_period=request.seasonal_period,
+               timezone=calendar.timezone if calendar is not None else None)
 
 
 def thresholds_for(fitted: FittedModel, request: RefitRequest) -> dict[str, Any]:

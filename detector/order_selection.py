@@ -276,15 +276,20 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
         interval_s = float(epoch[1] - epoch[0])
     plain = {"interval_s": interval_s}
     d, tests = choose_d(y)
-    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=max_fits, fit_kwargs=plain)
-    _evaluate(y, WHITE_NOISE, tried, plain)
     extra: dict[str, Any] = {}
     looked_for = ""
+    found = False
     if calendar is None and find_cycles and epoch is not None and interval_s:
         calendar, screen = screen_cycles(y, epoch, interval_s, timezone)
+        found = calendar is not None
         if screen:
             extra["cycle_screen"] = screen
             looked_for = "daily" + (" and weekly" if any(len(r["harmonics"]) > 1 for r in screen) else "")
+    # With a cycle found, the plain search stops at its starting models (SEARCH_PLAIN_WITH_CYCLE) and
+    # the budget goes to the models with the cycle; the plain twin of their winner is fitted below.
+    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=4 if found else max_fits,
+                            fit_kwargs=plain)
+    _evaluate(y, WHITE_NOISE, tried, plain)
     if calendar is not None:
         if epoch is None:
             raise FitError("calendar terms need the slots' timestamps")
@@ -300,6 +305,10 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
         for key, cand in with_calendar.items():
             cand.calendar_label = "+ " + calendar.description
             tried[("calendar",) + key] = cand
+        ok_cal = [c for c in with_calendar.values() if c.status == "ok"]
+        if found and ok_cal:
+            twin = min(ok_cal, key=lambda c: c.aicc).spec
+            _evaluate(y, twin, tried, plain)
     if seasonal_period is not None and 2 <= seasonal_period <= 24:
         for order in ((0, max(d - 1, 0), 1), (1, max(d - 1, 0), 0), (1, max(d - 1, 0), 1)):
             spec = ModelSpec(order, (0, 1, 1, seasonal_period), "n")
