@@ -193,7 +193,7 @@ def as_series(values: Any) -> np.ndarray:
 def ljung_box(residuals: np.ndarray, lag: int, model_df: int) -> float:
     """Ljung-Box p-value of ``residuals`` at ``lag``, with ``model_df`` fitted ARMA terms."""
     x = residuals[np.isfinite(residuals)]
-    if lag <= model_df or x.size <= lag + 1:
+    if lag <= model_df or x.size <= lag + 1 or not np.ptp(x) > 0:
         return math.nan
     table = acorr_ljungbox(x, lags=[lag], model_df=model_df)
     return float(table["lb_pvalue"].iloc[0])

@@ -275,6 +275,14 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
     if epoch is not None and epoch.size > 1:
         interval_s = float(epoch[1] - epoch[0])
     plain = {"interval_s": interval_s}
+    finite = y[np.isfinite(y)]
+    if finite.size and np.ptp(finite) == 0:
+        # A constant window has no orders to choose: the stated treatment of .estimation.
+        fitted = fit_spec(y, WHITE_NOISE, **plain)
+        candidate = Candidate(WHITE_NOISE, fitted.aicc, "ok")
+        selection = OrderSelection(0, [], [candidate], WHITE_NOISE,
+                                   "the training window is constant: white noise with a variance floor")
+        return replace(fitted, selection=selection)
     d, tests = choose_d(y)
     extra: dict[str, Any] = {}
     looked_for = ""

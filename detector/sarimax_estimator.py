@@ -159,15 +159,16 @@ def estimate_sarimax(y: np.ndarray, spec: ModelSpec, *, calendar: Any = None, ti
     captured += [w for w in _captured(caught) if w not in captured]
 
     burn = int(max(model.loglikelihood_burn, getattr(results, "nobs_diffuse", 0)))
-    z = np.asarray(results.standardized_forecasts_error[0, burn:], dtype=float)
-    z = z[np.isfinite(z)]
+    z_slots = np.asarray(results.standardized_forecasts_error[0, burn:], dtype=float)
+    z_slots = np.where(np.isfinite(y[burn:]), z_slots, np.nan)  # statsmodels writes 0 for a missing slot
+    z = z_slots[np.isfinite(z_slots)]
     seasonal_period = spec.seasonal[3] if spec.seasonal else None
     if calendar is not None and seasonal_period is None:
         seasonal_period = calendar.shortest_period_steps(interval)
     lag = ljung_box_lag(z.size, seasonal_period)
     model_df = spec.order[0] + spec.order[2] + (spec.seasonal[0] + spec.seasonal[2] if spec.seasonal else 0)
     lb_p = ljung_box(z, lag, model_df)
-    advice = assess(z, spec=spec, params=mapped, converged=converged, lb_pvalue=lb_p, lb_lag=lag,
+    advice = assess(z_slots, spec=spec, params=mapped, converged=converged, lb_pvalue=lb_p, lb_lag=lag,
                     interval_s=interval, has_daily_cycle=calendar is not None and calendar.has_period(86400.0),
                     warnings_seen=tuple(captured))
     n_eff = int(results.nobs_effective) if hasattr(results, "nobs_effective") else observed

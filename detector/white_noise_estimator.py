@@ -57,8 +57,10 @@ def estimate_white_noise(y: np.ndarray, *, selection: Any = None, interval_s: fl
     lag = ljung_box_lag(z.size, None)
     lb_p = ljung_box(z, lag, 0)
     params = {"intercept": mu, "sigma2": sigma2}
-    advice = extra_problems + assess(z, spec=WHITE_NOISE, params=params, converged=True, lb_pvalue=lb_p,
-                                     lb_lag=lag, interval_s=interval_s)
+    z_slots = (y - mu) / math.sqrt(sigma2)
+    # A constant window (extra_problems) has nothing more to test: every residual is 0.
+    advice = extra_problems or assess(z_slots, spec=WHITE_NOISE, params=params, converged=True,
+                                      lb_pvalue=lb_p, lb_lag=lag, interval_s=interval_s)
     system = LinearSystem(design=np.ones(1), obs_intercept=0.0, obs_cov=0.0, transition=np.zeros((1, 1)),
                           state_intercept_const=np.array([mu]), state_intercept_slope=np.zeros(1),
                           state_cov=np.array([[sigma2]]))
