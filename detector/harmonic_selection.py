@@ -142,7 +142,7 @@ def screen_cycles(y: np.ndarray, epoch_s: np.ndarray, interval_s: float,
     for ks in itertools.product(*choices):
         cols = [design[:, starts[j]:starts[j] + 2 * k] for j, k in enumerate(ks)]
         value = _conditional_criterion(y, np.column_stack(cols) if cols else np.empty((y.size, 0)))
-        table.append({"harmonics": list(ks), "screen_bic": value})
+        table.append({"harmonics": list(ks), "screen_bic": value if math.isfinite(value) else None})
         if best is None or value < best[0]:
             best = (value, ks)
     if best is None or not any(best[1]):
