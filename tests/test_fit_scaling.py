@@ -4,6 +4,7 @@ constant and quantized windows."""
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -13,6 +14,7 @@ from statsmodels.tsa.statespace.sarimax import SARIMAX
 from leadline.detector.estimation import decimal_resolution
 from leadline.detector.fitting import fit
 from leadline.detector.sarimax_estimator import fit_sarimax
+from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.simulate import simulate_arima
 from leadline.detector.spec import ModelSpec
 from reference import batch_filter, max_relative_difference
@@ -138,3 +140,27 @@ def test_fit_sarimax_still_fits_the_values_as_given():
     y = simulate_arima(300, ar=[0.4], seed=2)
     results, captured = fit_sarimax(y, ModelSpec.ar(1))
     assert results.params[1] == pytest.approx(0.4, abs=0.15) and isinstance(captured, list)
+
+
+EPOCH = 1_780_000_000.0 + 900.0 * np.arange(800)
+DAILY = CalendarTerms((SeasonalPeriod(86400.0, 2),))
+
+
+@pytest.mark.parametrize("spec, values, calendar", [
+    (ModelSpec.arima(1, 1, 0, drift=True),
+     100 + simulate_arima(800, ar=[0.4], d=1, seed=2) + 0.05 * np.arange(800), None),
+    (ModelSpec((1, 0, 0), trend="ct"), 30 + simulate_arima(800, ar=[0.5], seed=3) + 0.01 * np.arange(800), None),
+    (ModelSpec((1, 0, 1)), 30 + simulate_arima(800, ar=[0.5], ma=[0.3], seed=4)
+     + 2 * np.sin(2 * np.pi * EPOCH / 86400.0), DAILY),
+], ids=["drift", "const+trend", "calendar"])
+def test_mapped_estimates_equal_statsmodels_unscaled_fit(spec, values, calendar):
+    # Reference: statsmodels' SARIMAX maximum likelihood on the raw values, well conditioned here.
+    exog = calendar.design(EPOCH) if calendar is not None else None
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        reference = SARIMAX(values, exog=exog, order=spec.order, trend=spec.trend).fit(disp=False)
+    model = fit(values, spec, calendar=calendar, timestamps_epoch_s=EPOCH if calendar is not None else None)
+    assert model.loglik >= reference.llf - 1e-3
+    assert model.loglik == pytest.approx(reference.llf, abs=0.01)
+    ours = np.array([model.params[name] for name in reference.model.param_names])
+    np.testing.assert_allclose(ours, reference.params, rtol=0.02, atol=0.01 * np.abs(reference.params).max())
