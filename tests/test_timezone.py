@@ -89,3 +89,19 @@ def test_local_terms_fit_a_local_daily_curve_better_than_fixed_offset_terms(octo
     # The stream continues on local time after a restart.
     stream = Stream.from_bytes(local.stream().to_bytes())
     assert stream.regression.terms.timezone == "Europe/London"
+
+
+def test_config_timezone_reaches_the_feed_calendar(tmp_path):
+    from leadline.adapters.config import config_from_text
+    from leadline.adapters.run import feed_settings
+    from leadline.detector.errors import ConfigError
+
+    text = '[feeds.defaults]\nseasonality = ["1d:2"]\ntimezone = "Europe/London"\n'
+    config = config_from_text(text, tmp_path / "leadline.toml")
+    calendar = feed_settings(config, "site/flow").calendar
+    assert calendar.timezone == "Europe/London" and calendar.utc_offset_s == 0.0
+    with pytest.raises(ConfigError, match="IANA"):
+        config_from_text('[feeds.defaults]\ntimezone = "Mars/Olympus"\n', tmp_path / "leadline.toml")
+    with pytest.raises(ConfigError, match="do not go together"):
+        config_from_text('[feeds.defaults]\ntimezone = "Europe/London"\nutc_offset = "1h"\n',
+                         tmp_path / "leadline.toml")
