@@ -71,6 +71,7 @@ def feed_settings(config: Config, feed_id: str) -> FeedSettings:
                               rules=tuple(options["rules"]) if options["rules"] else None),
         counter=options["counter"],
         register_size=options["register_size"],
+        timezone=options["timezone"],
     )
 
 

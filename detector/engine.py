@@ -130,7 +130,7 @@ import numpy as np
 from scipy.stats import chi2, norm
 
 from .counters import CounterDeltas, CounterStep
-from .errors import ConfigError, DataError, RuleError, StateFormatError
+from .errors import ConfigError, DataError, RuleError, SpecError, StateFormatError
 from .events import AlarmEvent
 from .feed_state import (decode_time, encode_time, pack, restore_monitor, saved_open_events, snapshot_monitor,
                          unpack)
@@ -139,7 +139,7 @@ from .grid import GridCounts, GridCursor, infer_interval_s
 from .innovation import Innovation
 from .readings import Reading
 from .rules import FeedMonitor, MonitorConfig, budget_thresholds, per_point_rate, sigma_thresholds
-from .seasonality import CalendarTerms
+from .seasonality import CalendarTerms, zone_info
 from .spec import ModelSpec
 from .stream import Stream
 
@@ -200,6 +200,8 @@ class RefitRequest:
         How the alarm limits are set from the fit (see :func:`thresholds_for`).
     request_id : int
         Sequence number of the feed's requests.
+    timezone : str or None
+        IANA time zone of the cycles "auto" looks for (the feed's setting).
     """
 
     feed_id: str
@@ -212,6 +214,7 @@ class RefitRequest:
     interval_s: float = math.nan
     thresholds_config: dict[str, Any] = field(default_factory=dict)
     request_id: int = 0
+    timezone: str | None = None
 
 
 @dataclass
@@ -302,6 +305,9 @@ class FeedSettings:
         tick) are dropped and counted; None disables the check.
     level : float
         Coverage of the forecast interval in events.
+    timezone : str or None
+        IANA time zone of the cycles "auto" looks for when no calendar is
+        given (a calendar carries its own); None: UTC.
 
     Raises
     ------
@@ -330,6 +336,7 @@ class FeedSettings:
     reset_drop_fraction: float = 0.5
     future_tolerance_s: float | None = 3600.0
     level: float = 0.95
+    timezone: str | None = None
 
     def __post_init__(self) -> None:
         def bad(key: str, expected: str) -> ConfigError:
@@ -339,6 +346,11 @@ class FeedSettings:
             raise bad("spec", "a ModelSpec or 'auto'")
         if self.calendar is not None and not isinstance(self.calendar, CalendarTerms):
             raise bad("calendar", "CalendarTerms or None")
+        if self.timezone is not None:
+            try:
+                zone_info(self.timezone)
+            except SpecError as exc:
+                raise bad("timezone", "an IANA time zone such as 'Europe/London', or None") from exc
         if self.seasonal_period is not None and (isinstance(self.seasonal_period, bool)
                                                  or not isinstance(self.seasonal_period, int)
                                                  or not 2 <= self.seasonal_period <= 24):
@@ -422,7 +434,7 @@ def run_refit(request: RefitRequest) -> FittedModel:
     return fit(request.values, request.spec, calendar=calendar,
                timestamps_epoch_s=request.epoch_s if wants_times else None,
                seasonal_period=request.seasonal_period,
-               timezone=calendar.timezone if calendar is not None else None)
+               timezone=calendar.timezone if calendar is not None else request.timezone)
 
 
 def thresholds_for(fitted: FittedModel, request: RefitRequest) -> dict[str, Any]:
@@ -773,7 +785,7 @@ class _Feed:
         return RefitRequest(feed_id=self.feed_id, values=values, epoch_s=epoch, spec=spec, calendar=calendar,
                             reason=reason, seasonal_period=self.settings.seasonal_period, interval_s=interval,
                             thresholds_config=self.settings.thresholds_config(interval),
-                            request_id=self.request_seq)
+                            request_id=self.request_seq, timezone=self.settings.timezone)
 
     def _request_initial(self, out: EngineOutput) -> None:
         values = np.array(self.window, dtype=float)

@@ -105,3 +105,20 @@ def test_config_timezone_reaches_the_feed_calendar(tmp_path):
     with pytest.raises(ConfigError, match="do not go together"):
         config_from_text('[feeds.defaults]\ntimezone = "Europe/London"\nutc_offset = "1h"\n',
                          tmp_path / "leadline.toml")
+
+
+def test_auto_refit_looks_for_cycles_in_the_feeds_time_zone():
+    from leadline.detector.engine import FeedSettings, RefitRequest, run_refit
+    from leadline.detector.errors import ConfigError
+
+    epoch = utc(2026, 10, 18) + 900.0 * np.arange(10 * 96)
+    zone = zone_info("Europe/London")
+    hour = ((epoch + utc_offsets_s(epoch, zone)) % DAY_S) / 3600.0
+    y = 30.0 + 3.0 * np.sin(2 * np.pi * hour / 24) + simulate_arima(epoch.size, ar=[0.5], sigma=0.4, seed=8)
+    request = RefitRequest(feed_id="site/flow", values=y, epoch_s=epoch, spec="auto", calendar=None,
+                           reason="initial fit", interval_s=900.0, timezone="Europe/London")
+    fitted = run_refit(request)
+    assert fitted.calendar is not None and fitted.calendar.timezone == "Europe/London"
+    assert fitted.calendar.has_period(DAY_S)
+    with pytest.raises(ConfigError, match="timezone"):
+        FeedSettings(timezone="Mars/Olympus")
