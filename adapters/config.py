@@ -87,7 +87,10 @@ Schema
                                       ":"; without it K is chosen by AICc). Default none
     weekend                 bool      add a weekend regressor (default false)
     holidays                list      dates flagged as holidays: ``[2026-12-25, 2027-01-01]``
-    utc_offset              text      local time minus UTC for the weekend and holiday flags:
+    timezone                text      IANA time zone of the calendar terms and day flags, such as
+                                      ``"Europe/London"``: days follow its clock through
+                                      daylight-saving changes (default none: UTC)
+    utc_offset              text      a fixed local time minus UTC instead of ``timezone``:
                                       ``"1h"``, ``"-5h"``, ``"0"`` (default)
     interval                text      nominal reading interval ``"15min"`` (default ``"auto"``: the
                                       median spacing of the training readings)

@@ -27,7 +27,7 @@ from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.rules.monitor import INNOVATION_RULES, MonitorConfig
 from leadline.detector.rules import registry
 from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
-from leadline.detector.seasonality import SeasonalPeriod
+from leadline.detector.seasonality import SeasonalPeriod, zone_info
 from leadline.detector.spec import ModelSpec
 
 from .config_values import (
@@ -72,6 +72,7 @@ BUILTIN_DEFAULTS: dict[str, Any] = {
     "weekend": False,
     "holidays": [],
     "utc_offset_s": 0.0,
+    "timezone": _default(FeedSettings, "timezone"),
     "interval_s": _default(FeedSettings, "interval_s"),
     "train_points": _default(FeedSettings, "train_points"),
     "train_span_s": _default(FeedSettings, "train_span_s"),
@@ -188,6 +189,17 @@ def _utc_offset_s(value: Any) -> float:
     return seconds
 
 
+def _timezone(value: Any) -> str:
+    expected = 'an IANA time zone such as "Europe/London" or "UTC"'
+    if not isinstance(value, str):
+        raise Bad(expected)
+    try:
+        zone_info(value)
+    except SpecError as exc:
+        raise Bad(expected, "not in the IANA tz database") from exc
+    return value
+
+
 def _interval_s(value: Any) -> float | None:
     if value == "auto":
         return None
@@ -204,6 +216,7 @@ FEED_CHECKS: dict[str, Checker] = {
     "weekend": boolean,
     "holidays": list_of(_holiday, what="dates"),
     "utc_offset": _utc_offset_s,
+    "timezone": _timezone,
     "interval": _interval_s,
     "train_points": integer(MIN_TRAIN_POINTS),
     "train_span": duration_s,
@@ -362,6 +375,9 @@ def cross_check(resolved: Mapping[str, Any], layers: list[tuple[str, Mapping[str
     if rules is not None and "ewma" in rules and "ewma_lam" not in limits:
         problems.error(_where("rules", layers),
                        f'includes "ewma", which needs limits.ewma_lam (for example 0.2){suffix}')
+    if resolved["timezone"] is not None and resolved["utc_offset_s"]:
+        problems.error(_where("timezone", layers),
+                       f"timezone and utc_offset do not go together; give the time zone{suffix}")
     if resolved["seasonality"] and resolved["model"] != "auto" and resolved["model"].get("seasonal"):
         problems.error(_where("seasonality", layers),
                        "calendar cycles and a seasonal ARIMA part (model.seasonal) do not go together; "

@@ -46,7 +46,8 @@ def feed_settings(config: Config, feed_id: str) -> FeedSettings:
     calendar = None
     if options["seasonality"] or options["weekend"] or options["holidays"]:
         periods = tuple(SeasonalPeriod(p["period_s"], p["harmonics"]) for p in options["seasonality"])
-        calendar = CalendarTerms(periods, options["weekend"], tuple(options["holidays"]), options["utc_offset_s"])
+        calendar = CalendarTerms(periods, options["weekend"], tuple(options["holidays"]), options["utc_offset_s"],
+                                 options["timezone"])
     mode = options["threshold_mode"]
     limits = dict(options["limits"])
     train_points = int(options["train_points"])
@@ -70,6 +71,7 @@ def feed_settings(config: Config, feed_id: str) -> FeedSettings:
                               rules=tuple(options["rules"]) if options["rules"] else None),
         counter=options["counter"],
         register_size=options["register_size"],
+        timezone=options["timezone"],
     )
 
 

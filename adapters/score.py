@@ -18,7 +18,7 @@ from leadline.detector.fitting import fit
 from leadline.detector.grid import to_grid
 from leadline.detector.refit import thresholds_from_config
 from leadline.detector.rules.monitor import FeedMonitor, MonitorConfig
-from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
+from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod, zone_info
 from leadline.detector.spec import ModelSpec
 
 from .event_formats import write_alarm_events_json
@@ -59,7 +59,10 @@ def build_calendar(args) -> CalendarTerms | None:
                 from exc
     if not periods and not args.weekend and not holidays:
         return None
-    return CalendarTerms(periods, args.weekend, holidays, signed_duration_s(args.utc_offset or "0"))
+    if args.timezone and args.utc_offset:
+        raise SpecError("--timezone and --utc-offset do not go together; give the time zone")
+    return CalendarTerms(periods, args.weekend, holidays, signed_duration_s(args.utc_offset or "0"),
+                         args.timezone)
 
 
 def signed_duration_s(text: str) -> float:
@@ -84,19 +87,25 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
     if n_train >= grid.values.size:
         raise DataError(f"--train {args.train} covers all {grid.values.size} slots; nothing is left to score")
     spec = build_spec(args.order, args.seasonal, args.trend)
+    if args.timezone:
+        zone_info(args.timezone)  # a clear error before any fitting
     calendar = build_calendar(args)
     epoch = grid.epoch_s
     model = fit(grid.values[:n_train], spec, calendar=calendar,
-                timestamps_epoch_s=epoch[:n_train] if calendar is not None else None)
-    print(f"leadline score: fitted {model.spec.label} on {n_train} slots "
+                timestamps_epoch_s=epoch[:n_train] if calendar is not None or spec == "auto" else None,
+                interval_s=grid.interval_s, timezone=args.timezone)
+    print(f"leadline score: fitted {model.description} on {n_train} slots "
           f"(interval {grid.interval_s:g} s); AICc {model.aicc:.2f}, Ljung-Box p {model.ljung_box_pvalue:.3g}",
           file=err)
     if model.selection is not None:
         print(f"  chosen because: {model.selection.reason}", file=err)
     if model.calendar is not None:
         print(f"  calendar terms: {', '.join(model.calendar.names)}", file=err)
-    for problem in model.problems:
-        print(f"  fit problem: {problem}", file=err)
+    if model.treatment:
+        print(f"  treatment: {model.treatment}", file=err)
+    for problem in model.advice:
+        print(f"  fit problem: {problem.text}", file=err)
+        print(f"    remedy: {problem.remedy}", file=err)
     counts = {k: v for k, v in grid.counts.as_dict().items() if v and k != "placed"}
     if counts:
         print(f"  grid: {counts}", file=err)
@@ -161,7 +170,9 @@ def add_parser(subparsers) -> None:
                                          "without it K is chosen by AICc)")
     p.add_argument("--weekend", action="store_true", help="add a weekend regressor")
     p.add_argument("--holidays", help="comma-separated ISO dates to flag as holidays")
-    p.add_argument("--utc-offset", help="local time minus UTC for the calendar terms, e.g. 1h or -5h")
+    p.add_argument("--timezone", help="IANA time zone of the calendar terms and of the cycles 'auto' looks for, "
+                                      "e.g. Europe/London (default UTC); the daily shape follows its clock")
+    p.add_argument("--utc-offset", help="a fixed local time minus UTC instead of --timezone, e.g. 1h or -5h")
     p.add_argument("--level", type=float, default=FeedSettings.level,
                    help=f"forecast interval coverage (default {FeedSettings.level:g})")
     p.add_argument("--out", help="write the scores here instead of standard output")

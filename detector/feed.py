@@ -295,7 +295,7 @@ class FeedLifecycle:
         return RefitRequest(feed_id=self.feed_id, values=values, epoch_s=epoch, spec=spec, calendar=calendar,
                             reason=reason, seasonal_period=self.settings.seasonal_period, interval_s=interval,
                             thresholds_config=self.settings.thresholds_config(interval),
-                            request_id=self.request_seq)
+                            request_id=self.request_seq, timezone=self.settings.timezone)
 
     def _request_initial(self, out: EngineOutput) -> None:
         values = np.array(self.window, dtype=float)

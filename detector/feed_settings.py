@@ -14,9 +14,9 @@ import math
 from dataclasses import dataclass, field, replace
 from typing import Any
 
-from .errors import ConfigError, RuleError
+from .errors import ConfigError, RuleError, SpecError
 from .rules import FeedMonitor, MonitorConfig, budget_thresholds, sigma_thresholds
-from .seasonality import CalendarTerms
+from .seasonality import CalendarTerms, zone_info
 from .spec import ModelSpec
 
 #: Arguments of budget_thresholds that the engine sets itself (not settable in ``budget_options``).
@@ -79,6 +79,9 @@ class FeedSettings:
         tick) are dropped and counted; None disables the check.
     level : float
         Coverage of the forecast interval in events.
+    timezone : str or None
+        IANA time zone of the cycles "auto" looks for when no calendar is
+        given (a calendar carries its own); None: UTC.
 
     Raises
     ------
@@ -107,6 +110,7 @@ class FeedSettings:
     reset_drop_fraction: float = 0.5
     future_tolerance_s: float | None = 3600.0
     level: float = 0.95
+    timezone: str | None = None
 
     def __post_init__(self) -> None:
         def bad(key: str, expected: str) -> ConfigError:
@@ -176,6 +180,11 @@ class FeedSettings:
             raise bad("future_tolerance_s", "a number >= 0 (seconds) or None")
         if not (_is_number(self.level) and 0 < self.level < 1):
             raise bad("level", "a number in (0, 1)")
+        if self.timezone is not None:
+            try:
+                zone_info(self.timezone)
+            except SpecError as exc:
+                raise bad("timezone", "an IANA time zone such as 'Europe/London', or None") from exc
 
     def thresholds_config(self, interval_s: float) -> dict[str, Any]:
         """The part of the settings that sets the alarm limits (carried by a RefitRequest)."""

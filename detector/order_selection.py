@@ -26,13 +26,17 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
+from statsmodels.tsa.stattools import kpss
 
 from .errors import FitError, SpecError
+from .estimation import fit_spec
+from .harmonic_selection import choose_harmonics, screen_cycles
 from .spec import ModelSpec
+from .white_noise_estimator import WHITE_NOISE
 
 KPSS_ALPHA = 0.05
 ROOT_MARGIN = 1.001
@@ -95,8 +99,6 @@ def _sort_key(c: Candidate) -> tuple[int, float]:
 
 def kpss_pvalue(x: np.ndarray) -> tuple[float, float]:
     """KPSS level-stationarity statistic and p-value (p is clipped to [0.01, 0.1])."""
-    from statsmodels.tsa.stattools import kpss
-
     with warnings.catch_warnings():
         # statsmodels warns when p falls outside its table and clips it; the
         # clipped value is all the decision needs.
@@ -137,8 +139,6 @@ def _near_unit_root(fitted) -> bool:
 
 
 def _evaluate(y, spec, tried, fit_kwargs) -> Candidate:
-    from .fitting import fit_spec
-
     key = (spec.order, spec.seasonal, spec.trend)
     if key in tried:
         return tried[key]
@@ -245,30 +245,62 @@ def _calendar_residual(y: np.ndarray, design: np.ndarray) -> np.ndarray:
 
 
 def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any = None,
-                 seasonal_period: int | None = None, max_p: int = 4, max_q: int = 4, max_fits: int = 24):
+                 seasonal_period: int | None = None, interval_s: float | None = None,
+                 timezone: str | None = None, find_cycles: bool = True,
+                 max_p: int = 4, max_q: int = 4, max_fits: int = 24):
     """Choose d by KPSS and (p, q, constant) by stepwise AICc; return the winning fit.
 
     With ``calendar`` the search also chooses between no seasonality and
     calendar terms (their harmonics chosen by AICc first, on an
-    ARMA(1,1)); with a short ``seasonal_period`` s (<= 24) it also tries
-    seasonal differencing, SARIMA(p,d,q)(0,1,1)_s. Every candidate goes in
-    one AICc table on the same data. Caution: models with different
-    differencing have likelihoods of differently transformed data, so AICc
-    across them is a guide, as in Hyndman & Khandakar (2008), who choose D
-    by a test instead; the table shows the margin.
+    ARMA(1,1)). Without one, given the timestamps, it looks for the daily
+    and weekly cycles itself (:func:`.harmonic_selection.screen_cycles`,
+    in local time of ``timezone``) when the interval is under a day and
+    the window holds two cycles, and fits the cycles found with their
+    own orders into the same table; with ``find_cycles=False`` it does
+    not. With a short ``seasonal_period`` s (<= 24) it also tries
+    seasonal differencing, SARIMA(p,d,q)(0,1,1)_s. White noise with a
+    constant, in closed form, is always in the table as the fallback.
+    Every candidate goes in one AICc table on the same data. Caution:
+    models with different differencing have likelihoods of differently
+    transformed data, so AICc across them is a guide, as in Hyndman &
+    Khandakar (2008), who choose D by a test instead; the table shows the
+    margin.
 
     Returns
     -------
     FittedModel
         With ``selection`` set to an :class:`OrderSelection`.
     """
+    epoch = None if timestamps_epoch_s is None else np.asarray(timestamps_epoch_s, dtype=float)
+    if epoch is not None and epoch.size > 1:
+        interval_s = float(epoch[1] - epoch[0])
+    plain = {"interval_s": interval_s}
+    finite = y[np.isfinite(y)]
+    if finite.size and np.ptp(finite) == 0:
+        # A constant window has no orders to choose: the stated treatment of .estimation.
+        fitted = fit_spec(y, WHITE_NOISE, **plain)
+        candidate = Candidate(WHITE_NOISE, fitted.aicc, "ok")
+        selection = OrderSelection(0, [], [candidate], WHITE_NOISE,
+                                   "the training window is constant: white noise with a variance floor")
+        return replace(fitted, selection=selection)
     d, tests = choose_d(y)
-    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=max_fits)
     extra: dict[str, Any] = {}
+    looked_for = ""
+    found = False
+    if calendar is None and find_cycles and epoch is not None and interval_s:
+        calendar, screen = screen_cycles(y, epoch, interval_s, timezone)
+        found = calendar is not None
+        if screen:
+            extra["cycle_screen"] = screen
+            looked_for = "daily" + (" and weekly" if any(len(r["harmonics"]) > 1 for r in screen) else "")
+    # With a cycle found, the plain search stops at its starting models (SEARCH_PLAIN_WITH_CYCLE) and
+    # the budget goes to the models with the cycle; the plain twin of their winner is fitted below.
+    tried = stepwise_search(y, d, max_p=max_p, max_q=max_q, max_fits=4 if found else max_fits,
+                            fit_kwargs=plain)
+    _evaluate(y, WHITE_NOISE, tried, plain)
     if calendar is not None:
-        from .seasonality import choose_harmonics
-
-        epoch = np.asarray(timestamps_epoch_s, dtype=float)
+        if epoch is None:
+            raise FitError("calendar terms need the slots' timestamps")
         if not calendar.is_resolved:
             base = ModelSpec((1, 0, 1), trend="c")
             calendar, table = choose_harmonics(y, epoch, base, calendar)
@@ -279,12 +311,16 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
         with_calendar = stepwise_search(y, d_cal, max_p=min(max_p, 3), max_q=min(max_q, 3), max_fits=12,
                                         fit_kwargs=kwargs, tried={})
         for key, cand in with_calendar.items():
-            cand.calendar_label = "+ calendar" + _calendar_text(calendar)
+            cand.calendar_label = "+ " + calendar.description
             tried[("calendar",) + key] = cand
+        ok_cal = [c for c in with_calendar.values() if c.status == "ok"]
+        if found and ok_cal:
+            twin = min(ok_cal, key=lambda c: c.aicc).spec
+            _evaluate(y, twin, tried, plain)
     if seasonal_period is not None and 2 <= seasonal_period <= 24:
         for order in ((0, max(d - 1, 0), 1), (1, max(d - 1, 0), 0), (1, max(d - 1, 0), 1)):
             spec = ModelSpec(order, (0, 1, 1, seasonal_period), "n")
-            _evaluate(y, spec, tried, {})
+            _evaluate(y, spec, tried, plain)
     candidates = list(tried.values())
     ok = [c for c in candidates if c.status == "ok"]
     if not ok:
@@ -293,23 +329,18 @@ def select_order(y: np.ndarray, *, calendar: Any = None, timestamps_epoch_s: Any
     chosen = min(ok, key=lambda c: c.aicc)
     kpss_text = ", ".join(f"d={t['d']}: p={t['pvalue']:.3f}" for t in tests) or "series too short to test"
     reason = explain(candidates, chosen, f"d = {d} from KPSS at 5% ({kpss_text})")
+    if chosen.calendar_label:
+        reason += f"; with calendar terms ({calendar.description})"
+    elif calendar is not None:
+        reason += f"; calendar terms ({calendar.description}) tried, AICc kept none"
+    elif looked_for:
+        reason += f"; looked for {looked_for} cycles and found none worth a fit"
     selection = OrderSelection(chosen.fitted.spec.order[1], tests, candidates, chosen.spec, reason, extra,
                                chosen.label)
     return _with_selection(chosen.fitted, selection)
 
 
-def _calendar_text(calendar) -> str:
-    parts = [f"{p.label} K={p.harmonics}" for p in calendar.periods]
-    if calendar.weekend:
-        parts.append("weekend")
-    if calendar.holidays:
-        parts.append("holidays")
-    return " (" + ", ".join(parts) + ")"
-
-
 def _with_selection(fitted, selection):
-    from dataclasses import replace
-
     for c in selection.candidates:
         c.fitted = None  # keep the table light; the winner is returned
     return replace(fitted, selection=selection)

@@ -78,6 +78,8 @@ class RefitRequest:
         How the alarm limits are set from the fit (see :func:`thresholds_for`).
     request_id : int
         Sequence number of the feed's requests.
+    timezone : str or None
+        IANA time zone of the cycles "auto" looks for (the feed's setting).
     """
 
     feed_id: str
@@ -90,6 +92,7 @@ class RefitRequest:
     interval_s: float = math.nan
     thresholds_config: dict[str, Any] = field(default_factory=dict)
     request_id: int = 0
+    timezone: str | None = None
 
 
 def run_refit(request: RefitRequest) -> FittedModel:
@@ -102,9 +105,11 @@ def run_refit(request: RefitRequest) -> FittedModel:
         :meth:`~leadline.detector.engine.Engine.refit_failed`.
     """
     calendar = request.calendar
+    wants_times = calendar is not None or request.spec == "auto"  # "auto" looks for daily/weekly cycles
     return fit(request.values, request.spec, calendar=calendar,
-               timestamps_epoch_s=request.epoch_s if calendar is not None else None,
-               seasonal_period=request.seasonal_period)
+               timestamps_epoch_s=request.epoch_s if wants_times else None,
+               seasonal_period=request.seasonal_period,
+               timezone=calendar.timezone if calendar is not None else request.timezone)
 
 
 def thresholds_for(fitted: FittedModel, request: RefitRequest) -> AlarmLimits:

@@ -13,8 +13,11 @@ the rest (Hyndman & Athanasopoulos, Forecasting: Principles and Practice,
     x_t = \\big[\\sin(2\\pi k \\tau_t / P_j),\\ \\cos(2\\pi k \\tau_t / P_j)\\big]_{j,\\ k=1..K_j}
           \\ \\cup\\ [\\text{weekend}_t,\\ \\text{holiday}_t]
 
-where tau_t is the reading's time in seconds since the Unix epoch (shifted
-by ``utc_offset_s`` so that a "day" starts at local midnight), P_j the
+where tau_t is the reading's local clock time in seconds since 1970-01-01
+00:00 local (the epoch seconds plus the UTC offset in force at that
+instant in the IANA time zone ``timezone``, read with :mod:`zoneinfo`), so
+that a "day" starts at local midnight and the daily shape follows the
+clock through both daylight-saving changes; P_j the
 period in seconds and K_j its number of harmonics. Because x_t comes from
 the timestamp and not from a step count, gaps, restarts and intervals
 that do not divide the period (7-minute data, daily cycle) stay in phase.
@@ -30,15 +33,16 @@ import math
 from dataclasses import dataclass, field
 from datetime import date, datetime, timezone
 from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import numpy as np
 
 from .durations import parse_duration_s
 from .errors import SpecError
 
-#: Harmonics tried per period when K is not given (chosen by AICc).
-DEFAULT_HARMONIC_CHOICES = (1, 2, 3, 4, 6)
 DAY_S = 86400.0
+WEEK_S = 7 * DAY_S
+CYCLE_NAMES = {DAY_S: "daily cycle", WEEK_S: "weekly cycle"}
 
 
 @dataclass(frozen=True)
@@ -84,17 +88,27 @@ class CalendarTerms:
     holidays : tuple of datetime.date
         Add a regressor that is 1 on these dates.
     utc_offset_s : float
-        Local time minus UTC, so that days and weekends start at local midnight.
+        A fixed local time minus UTC, kept for configs and saved models
+        written before time zones; 0 with ``timezone``.
+    timezone : str or None
+        An IANA time zone such as ``"Europe/London"``; local time follows
+        its daylight-saving changes. None: UTC plus ``utc_offset_s``.
     """
 
     periods: tuple[SeasonalPeriod, ...] = ()
     weekend: bool = False
     holidays: tuple[date, ...] = ()
     utc_offset_s: float = 0.0
+    timezone: str | None = None
     _holiday_ordinals: frozenset = field(default=frozenset(), repr=False, compare=False)
+    _zone: Any = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "periods", tuple(self.periods))
+        if self.timezone is not None:
+            object.__setattr__(self, "_zone", zone_info(self.timezone))
+            if self.utc_offset_s:
+                raise SpecError(f"give a time zone ({self.timezone!r}) or a fixed UTC offset, not both")
         object.__setattr__(self, "holidays", tuple(sorted(set(self.holidays))))
         if not self.periods and not self.weekend and not self.holidays:
             raise SpecError("calendar terms need at least one period, the weekend flag or holidays")
@@ -107,7 +121,14 @@ class CalendarTerms:
 
     def with_harmonics(self, harmonics: tuple[int, ...]) -> "CalendarTerms":
         periods = tuple(SeasonalPeriod(p.period_s, k) for p, k in zip(self.periods, harmonics))
-        return CalendarTerms(periods, self.weekend, self.holidays, self.utc_offset_s)
+        return CalendarTerms(periods, self.weekend, self.holidays, self.utc_offset_s, self.timezone)
+
+    def local_epoch_s(self, epoch_s: np.ndarray) -> np.ndarray:
+        """Local clock time of each instant, as seconds since 1970-01-01 00:00 local."""
+        epoch = np.asarray(epoch_s, dtype=float)
+        if self._zone is None:
+            return epoch + self.utc_offset_s
+        return epoch + utc_offsets_s(epoch, self._zone)
 
     @property
     def names(self) -> list[str]:
@@ -122,6 +143,23 @@ class CalendarTerms:
             out.append("holiday")
         return out
 
+    @property
+    def description(self) -> str:
+        """The terms in words: ``"daily cycle, 3 harmonics; weekly cycle, 1 harmonic; weekend"``."""
+        parts = []
+        for p in self.periods:
+            name = CYCLE_NAMES.get(p.period_s, f"{p.label} cycle")
+            k = p.harmonics
+            parts.append(name if k is None else f"{name}, {k} harmonic{'s' if k != 1 else ''}")
+        if self.weekend:
+            parts.append("weekend")
+        if self.holidays:
+            parts.append("holidays")
+        return "; ".join(parts)
+
+    def has_period(self, period_s: float) -> bool:
+        return any(p.period_s == period_s for p in self.periods)
+
     def shortest_period_steps(self, interval_s: float | None) -> int | None:
         """The shortest cycle in slots, for the Ljung-Box lag."""
         if not self.periods or not interval_s:
@@ -132,7 +170,7 @@ class CalendarTerms:
         """The regressors x_t for slots at ``epoch_s``; shape (n, len(names))."""
         if not self.is_resolved:
             raise SpecError("choose the harmonics before building the design (see fit with calendar terms)")
-        tau = np.asarray(epoch_s, dtype=float) + self.utc_offset_s
+        tau = self.local_epoch_s(epoch_s)
         columns = []
         for p in self.periods:
             for k in range(1, p.harmonics + 1):
@@ -159,6 +197,7 @@ class CalendarTerms:
             "weekend": self.weekend,
             "holidays": [d.isoformat() for d in self.holidays],
             "utc_offset_s": self.utc_offset_s,
+            "timezone": self.timezone,
             "names": self.names if self.is_resolved else None,
         }
 
@@ -169,6 +208,7 @@ class CalendarTerms:
             bool(data.get("weekend", False)),
             tuple(date.fromisoformat(d) for d in data.get("holidays", [])),
             float(data.get("utc_offset_s", 0.0)),
+            data.get("timezone"),
         )
 
 
@@ -207,49 +247,37 @@ def regression_from_dict(data: dict[str, Any]) -> CalendarRegression:
                               data["origin_epoch_s"], data["interval_s"])
 
 
-def choose_harmonics(y, epoch_s, spec, calendar: CalendarTerms, choices=DEFAULT_HARMONIC_CHOICES):
-    """Pick K per period by AICc, one period at a time, the others held at their current K.
+def zone_info(name: str) -> ZoneInfo:
+    """The IANA time zone ``name``, or a :class:`SpecError` naming what was expected."""
+    try:
+        return ZoneInfo(str(name))
+    except (ZoneInfoNotFoundError, ValueError) as exc:
+        raise SpecError(f"time zone {name!r} is not in the IANA tz database; expected a name such as "
+                        "'Europe/London' or 'UTC'") from exc
 
-    Returns
-    -------
-    (CalendarTerms, list of dict)
-        The resolved terms and the table of every (K..., AICc) tried.
+
+def utc_offsets_s(epoch_s: np.ndarray, zone: ZoneInfo) -> np.ndarray:
+    """The UTC offset (local minus UTC, seconds) in force at each instant in ``zone``.
+
+    The offset is read at the start and the end of each distinct whole
+    minute (a transition almost always falls on a whole minute of UTC) and
+    spread back; in a minute with a transition inside it, each instant is
+    read on its own.
     """
-    from .errors import FitError
-    from .fitting import fit_spec
+    epoch = np.asarray(epoch_s, dtype=float)
 
-    period_s = [p.period_s for p in calendar.periods]
-    interval = float(epoch_s[1] - epoch_s[0])
-    # K may not exceed half the period in slots (Nyquist), nor the choices.
-    limits = [max(1, int(p / interval // 2)) for p in period_s]
-    current = [p.harmonics or min(2, lim) for p, lim in zip(calendar.periods, limits)]
-    table: list[dict[str, Any]] = []
-    tried: dict[tuple[int, ...], float] = {}
+    def offset(t: float) -> float:
+        return datetime.fromtimestamp(float(t), zone).utcoffset().total_seconds()
 
-    def score(ks: tuple[int, ...]) -> float:
-        if ks not in tried:
-            try:
-                fitted = fit_spec(y, spec, calendar=calendar.with_harmonics(ks), timestamps_epoch_s=epoch_s)
-                tried[ks] = fitted.aicc
-            except FitError:
-                tried[ks] = math.inf
-            table.append({"harmonics": list(ks), "aicc": tried[ks]})
-        return tried[ks]
-
-    for j, p in enumerate(calendar.periods):
-        if p.harmonics is not None:
-            continue
-        best = None
-        for k in choices:
-            if k > limits[j]:
-                continue
-            ks = tuple(current[:j] + [k] + current[j + 1 :])
-            value = score(ks)
-            if best is None or value < best[0]:
-                best = (value, k)
-        if best is not None:
-            current[j] = best[1]
-    return calendar.with_harmonics(tuple(current)), table
+    minutes = np.floor(epoch / 60.0)
+    unique, inverse = np.unique(minutes, return_inverse=True)
+    start = np.array([offset(m * 60.0) for m in unique])
+    end = np.array([offset(m * 60.0 + 59.999) for m in unique])
+    out = start[inverse].reshape(epoch.shape)
+    mixed = (start != end)[inverse].reshape(epoch.shape)
+    if mixed.any():
+        out[mixed] = [offset(t) for t in epoch[mixed]]
+    return out
 
 
 def utc_epoch_s(stamp: datetime) -> float:

@@ -53,6 +53,7 @@ from scipy.stats import norm
 
 from .errors import ParameterError, StateFormatError
 from .innovation import Innovation
+from .seasonality import regression_from_dict
 from .statespace import LinearSystem
 
 #: Slots of d_t computed at a time for a stream with calendar terms.
@@ -407,8 +408,6 @@ class Stream:
             state, cov = arrays["state"], arrays["cov"]
             regression = None
             if header.get("regression") is not None:
-                from .seasonality import regression_from_dict
-
                 regression = regression_from_dict(header["regression"])
             return cls(
                 system,
