@@ -64,6 +64,11 @@ if TYPE_CHECKING:  # for type checkers and editors; at run time see __getattr__
     from .spec import ModelSpec
     from .stream import Stream
     from .rules import (
+        AlarmLimits,
+        LimitKey,
+        Rule,
+        RuleEntry,
+        StepResult,
         AlarmLifecycle,
         Assessment,
         CusumRule,
@@ -101,6 +106,11 @@ _LAZY = {
     "Reading": ".readings",
     "AlarmEvent": ".events",
     "CAUTION": ".events",
+    "AlarmLimits": ".rules",
+    "LimitKey": ".rules",
+    "Rule": ".rules",
+    "RuleEntry": ".rules",
+    "StepResult": ".rules",
     "AlarmLifecycle": ".rules",
     "Assessment": ".rules",
     "CusumRule": ".rules",
@@ -140,6 +150,11 @@ __all__ = [
     "CAUTION",
     # alarm rules (leadline.detector.rules.__all__)
     "AlarmLifecycle",
+    "AlarmLimits",
+    "LimitKey",
+    "Rule",
+    "RuleEntry",
+    "StepResult",
     "Assessment",
     "CusumRule",
     "CusumSignal",

@@ -21,7 +21,8 @@ EXPECTED = sorted([
     "AlarmEvent", "CAUTION", "Engine", "FeedSettings", "FittedModel", "Innovation", "ModelSpec", "Reading",
     "Stream", "StreamBank", "fit",
     # the rules' public names
-    "AlarmLifecycle", "Assessment", "CusumRule", "CusumSignal", "EwmaChart", "EwmaRule", "FeedMonitor",
+    "AlarmLifecycle", "AlarmLimits", "Assessment", "CusumRule", "CusumSignal", "EwmaChart", "EwmaRule", "FeedMonitor",
+    "LimitKey", "Rule", "RuleEntry", "StepResult",
     "FlatlineRule", "LifecycleConfig", "MonitorConfig", "NoiseBurstRule", "RangeRule", "SpikeRule",
     "StaleRule", "TabularCusum", "budget_thresholds", "cusum_arl", "ewma_arl", "per_point_rate",
     "shewhart_arl", "sigma_thresholds", "validate_thresholds",

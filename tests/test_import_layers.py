@@ -35,7 +35,9 @@ def detector_imports(path: Path) -> set[str]:
             targets = [stem] + [f"{stem}.{alias.name}" for alias in node.names]
         else:
             continue
-        found.update(t for t in targets if t.startswith(PACKAGE))
+        # a package is always imported before its own modules, so naming an
+        # ancestor package (``from . import registry``) is no dependency on it
+        found.update(t for t in targets if t.startswith(PACKAGE) and not name.startswith(t + "."))
     return found
 
 

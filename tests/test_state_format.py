@@ -45,6 +45,10 @@ def test_a_checkpoint_of_the_first_layout_resumes_like_an_uninterrupted_run():
     # tests/data/checkpoint_first_layout.bin was written by the first checkpoint layout (the rules'
     # state saved as the objects' attributes), for the engine tests' feed cut at slot 601, inside
     # the spike episode of slot 600. It must resume with its rule states, as a run that never stopped.
+    # That run's events and z (tests/data/checkpoint_first_layout_expected.json) were recorded with
+    # the build that wrote the checkpoint: today's fits differ slightly, so a run started afresh
+    # now would not be the run the checkpoint was cut from.
+    import json
     from datetime import datetime, timedelta, timezone
     from pathlib import Path
 
@@ -67,14 +71,15 @@ def test_a_checkpoint_of_the_first_layout_resumes_like_an_uninterrupted_run():
                 out.extend(engine.install_model(feed, run_refit(request), 1, request.reason))
         return out
 
-    whole = drive(Engine(lambda feed_id: settings()), 0)
+    data = Path(__file__).parent / "data"
+    whole = json.loads((data / "checkpoint_first_layout_expected.json").read_text(encoding="utf-8"))
     resumed = Engine(lambda feed_id: settings())
-    resumed.restore(feed, (Path(__file__).parent / "data" / "checkpoint_first_layout.bin").read_bytes(), 1)
+    resumed.restore(feed, (data / "checkpoint_first_layout.bin").read_bytes(), 1)
     out = drive(resumed, 601)
     assert "rule states restored" in out.state_changes[0].detail
-    after = [ev for ev in whole.events if ev.end is not None or ev.start >= t0 + timedelta(minutes=601)]
-    assert [(ev.key, ev.end, ev.severity) for ev in out.events] == [(ev.key, ev.end, ev.severity) for ev in after]
+    assert [[ev.rule, ev.start.isoformat(), None if ev.end is None else ev.end.isoformat(), ev.severity]
+            for ev in out.events] == whole["events"]
     assert out.events[0].rule == "spike" and out.events[0].start == t0 + timedelta(minutes=600)  # the saved episode
-    z_whole = np.array([inn.z for _, inn in whole.innovations[601 - 300:]])
+    z_whole = np.array([np.nan if z is None else z for z in whole["z_from_slot_601"]])
     z_resumed = np.array([inn.z for _, inn in out.innovations])
     np.testing.assert_allclose(z_resumed, z_whole, rtol=1e-7, atol=1e-9)

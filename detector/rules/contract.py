@@ -60,9 +60,14 @@ from dataclasses import dataclass, fields
 from datetime import datetime, timezone
 from typing import Any, Protocol, runtime_checkable
 
+import numpy as np
+
 from ..errors import RuleError, StateFormatError
 from ..events import AlarmEvent
 from ..innovation import Innovation
+
+#: Keys of the stored limits that are not rules' sections (no rule may take these names).
+RESERVED_KEYS = ("format", "format_version", "mode", "budget", "training")
 
 #: The key of a state dict that holds the version of its layout.
 STATE_VERSION_KEY = "v"
@@ -278,8 +283,6 @@ class BudgetContext:
 
     @property
     def abs_z(self) -> Any:
-        import numpy as np
-
         return np.abs(self.z)
 
     @property
@@ -356,9 +359,8 @@ class RuleEntry:
     def __post_init__(self) -> None:
         if self.kind not in KINDS:
             raise RuleError(f"rule {self.name!r}: kind must be one of {KINDS}, got {self.kind!r}")
-        from .lifecycle import LifecycleConfig
-
-        if not isinstance(self.lifecycle, LifecycleConfig):
+        # checked by its fields: the lifecycle module imports this one
+        if not all(hasattr(self.lifecycle, key) for key in ("on_delay_k", "on_delay_n", "off_delay_steps")):
             raise RuleError(f"rule {self.name!r}: lifecycle must be a LifecycleConfig")
 
     @property

@@ -28,13 +28,14 @@ from dataclasses import dataclass
 from typing import Any
 
 from ..errors import RuleError
+from . import registry
+from .contract import RESERVED_KEYS
 
 FORMAT = "leadline.thresholds"
 #: Version of the JSON form written by :meth:`AlarmLimits.to_json`.
 FORMAT_VERSION = 1
 MODES = ("sigma", "budget")
-#: Top-level keys of the JSON form that are not rule sections.
-RESERVED_KEYS = ("format", "format_version", "mode", "budget", "training")
+
 
 
 class Section(Mapping):
@@ -147,8 +148,6 @@ class AlarmLimits:
             Naming the key that is missing or has a bad value, or a format
             version this build does not read.
         """
-        from . import registry
-
         if not isinstance(data, Mapping):
             raise RuleError(f"thresholds must be a dict, got {type(data).__name__}")
         if data.get("format") != FORMAT:

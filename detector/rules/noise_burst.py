@@ -65,7 +65,7 @@ from ..errors import RuleError
 from ..innovation import Innovation
 from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry
 from .lifecycle import Assessment, LifecycleConfig
-from .tail_limits import noise_limit_scale
+from .tail_limits import MIN_RESIDUALS, _clip, _tail_quantiles
 
 #: Defaults: window w, raise and clear tail probabilities, winsorizing bound.
 DEFAULT_WINDOW = 24
@@ -311,3 +311,19 @@ ENTRY = RuleEntry(
     required=("window", "tail_probability", "limit_scale"),
     sigma_limits=sigma_limits, budget_limits=budget_limits,
 )
+
+
+def noise_limit_scale(z: np.ndarray, window: int, rate: float, clip_abs_z: float | None, seed: int = 0,
+                      windows: int = 100_000) -> float:
+    """max(1, Q_E / Q_G) from windows of resampled residuals (see the Notes)."""
+    z = np.asarray(z, dtype=float)
+    z = z[np.isfinite(z)]
+    if z.size < MIN_RESIDUALS:
+        return 1.0
+    rng = np.random.default_rng(seed)
+    q = []
+    for chunk in range(0, windows, 20_000):
+        draws = _clip(rng.choice(z, size=(min(20_000, windows - chunk), window)), clip_abs_z)
+        q.append(0.5 * (np.diff(draws, axis=1) ** 2).sum(axis=1))
+    q_emp = float(_tail_quantiles(np.sort(np.concatenate(q)), rate))
+    return max(1.0, q_emp / burst_limit(window, rate))

@@ -15,7 +15,7 @@ of one step come in it) and the limits sections are written in it.
 
 from __future__ import annotations
 
-from .contract import LimitKey, RuleEntry
+from .contract import RESERVED_KEYS, LimitKey, RuleEntry
 
 __all__ = ["LimitKey", "RuleEntry", "RULES", "ENGINE_EVENT_KINDS", "entry", "rule_names", "event_rule_names",
            "limit_keys", "default_lifecycles"]
@@ -38,8 +38,6 @@ ENGINE_EVENT_KINDS = ("meter_reset",)
 
 def entries(rules: tuple[RuleEntry, ...] | None = None) -> tuple[RuleEntry, ...]:
     """The registry (or ``rules``), checked: unique names, none clashing with the limits' own keys."""
-    from .limits import RESERVED_KEYS
-
     found = RULES if rules is None else rules
     names = [entry.name for entry in found]
     if len(set(names)) != len(names) or set(names) & set(RESERVED_KEYS):

@@ -114,24 +114,6 @@ def _clip(z: np.ndarray, c: float | None) -> np.ndarray:
     return z if c is None else np.clip(z, -c, c)
 
 
-def noise_limit_scale(z: np.ndarray, window: int, rate: float, clip_abs_z: float | None, seed: int = 0,
-                      windows: int = 100_000) -> float:
-    """max(1, Q_E / Q_G) from windows of resampled residuals (see the Notes)."""
-    from .noise_burst import burst_limit
-
-    z = np.asarray(z, dtype=float)
-    z = z[np.isfinite(z)]
-    if z.size < MIN_RESIDUALS:
-        return 1.0
-    rng = np.random.default_rng(seed)
-    q = []
-    for chunk in range(0, windows, 20_000):
-        draws = _clip(rng.choice(z, size=(min(20_000, windows - chunk), window)), clip_abs_z)
-        q.append(0.5 * (np.diff(draws, axis=1) ** 2).sum(axis=1))
-    q_emp = float(_tail_quantiles(np.sort(np.concatenate(q)), rate))
-    return max(1.0, q_emp / burst_limit(window, rate))
-
-
 def empirical_cusum_h(z: np.ndarray, k: float, rate: float, h_start: float, seed: int = 0,
                       max_steps: int = 4_000_000, clip_abs_z: float | None = None) -> float:
     """The smallest h (>= h_start) whose CUSUM signal rate on resampled ``z`` is at most ``rate``.

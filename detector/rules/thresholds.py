@@ -75,9 +75,10 @@ from ..errors import RuleError
 from .contract import BudgetContext
 from .limits import FORMAT, FORMAT_VERSION, AlarmLimits
 from . import registry
+from .noise_burst import noise_limit_scale  # noqa: F401 (re-exported)
 from .tail_limits import (DAY_S, MIN_RESIDUALS, MIN_TAIL_POINTS, WEEK_S, _pareto_pwm,  # noqa: F401 (re-exported)
                           _tail_quantiles, empirical_abs_limit, empirical_cusum_h, gaussian_abs_limit,
-                          noise_limit_scale, per_point_rate)
+                          per_point_rate)
 
 
 def default_shares() -> dict[str, float]:
