@@ -26,7 +26,7 @@ from typing import Any, Callable
 
 from sqlalchemy import Engine, func, select
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.errors import StoreError
 from leadline.detector.events import AlarmEvent
 

@@ -36,7 +36,7 @@ from sqlalchemy import Connection, and_, case, delete, func, literal_column, or_
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import Dialect
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.events import SEVERITIES, AlarmEvent
 
 from . import schema

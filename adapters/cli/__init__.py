@@ -7,7 +7,7 @@ import sys
 
 from leadline.detector.errors import LeadlineError
 
-from . import check_config, demo, review_events, review_export, review_notes, review_status, run, score
+from . import check_config, demo, events, export, notes, run, score, status
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -21,10 +21,10 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_parser(subparsers)
     demo.add_parser(subparsers)
     check_config.add_parser(subparsers)
-    review_events.add_parser(subparsers)
-    review_notes.add_parser(subparsers)
-    review_status.add_parser(subparsers)
-    review_export.add_parser(subparsers)
+    events.add_parser(subparsers)
+    notes.add_parser(subparsers)
+    status.add_parser(subparsers)
+    export.add_parser(subparsers)
     return parser
 
 

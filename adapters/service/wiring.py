@@ -1,8 +1,8 @@
-"""``leadline run --config FILE``: build the service from a config and run it.
+"""Build the service from a config, and run it with signals wired.
 
-The config (:mod:`.config`) names the sources, the store, the feeds'
+The config (:mod:`leadline.adapters.config`) names the sources, the store, the feeds'
 options, the refit policy and the alarm publisher. This module turns it
-into the running parts: one :class:`~.sources.csv_follow.CsvFollower` per
+into the running parts: one :class:`~leadline.adapters.sources.csv_follow.CsvFollower` per
 ``[[sources.csv]]`` (resuming from the offsets committed in the store),
 one :class:`~.sources.mqtt_subscriber.MqttSubscriber` per
 ``[[sources.mqtt]]``, the engine with each feed's
@@ -23,13 +23,12 @@ from typing import Any
 
 from leadline.detector.engine import Engine, FeedSettings
 from leadline.detector.errors import ConfigError, StateFormatError
-from leadline.detector.events import CAUTION
 from leadline.detector.rules.monitor import MonitorConfig
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
-from .config import Config, load_config
-from .service import Service, log_fields
+from ..config.file import Config
+from .loop import Service, log_fields
 
 logger = logging.getLogger("leadline.run")
 
@@ -92,9 +91,9 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
     engine's ticks follow the newest reading, and readings are not checked
     against the wall clock (for backfills of history and the demo).
     """
-    from .sources.csv_follow import CsvFollower
-    from .sources.mqtt_subscriber import MqttSubscriber
-    from .store import open_store
+    from ..sources.csv_follow import CsvFollower
+    from ..sources.mqtt_subscriber import MqttSubscriber
+    from ..store import open_store
 
     store = open_store(config.store.url, flush_interval_s=config.store.flush_interval_s,
                        max_staged_events=config.store.flush_events)
@@ -124,7 +123,7 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
                                       queue_max_messages=mqtt_source.queue_size))
     publisher = None
     if config.publish is not None:
-        from .sources.alarm_publisher import AlarmPublisher
+        from ..sinks.alarm_publisher import AlarmPublisher
 
         inner = AlarmPublisher(config.publisher_settings(), config.publish.topic_template,
                                config.publish.status_topic_template, config.publish.max_queued_messages)
@@ -162,25 +161,3 @@ def run_service(service: Service) -> int:
         if service.publisher is not None:
             service.publisher.publisher.close()
         service.store.close()
-
-
-def add_parser(subparsers) -> None:
-    p = subparsers.add_parser("run", help="run the service: follow the sources, score, store the events",
-                              description="Run the service from a config file until SIGTERM or SIGINT. " + CAUTION)
-    p.add_argument("--config", required=True, help="the TOML config file")
-    p.add_argument("--from-start", action="store_true",
-                   help="read CSV files without a committed offset from their first byte (backfill history)")
-    p.add_argument("--replay", action="store_true",
-                   help="run on reading time, not the wall clock: for a replay of history")
-    p.set_defaults(handler=_handle)
-
-
-def _handle(args) -> int:
-    configure_logging()
-    config = load_config(args.config)
-    for warning in config.warnings:
-        logger.warning(log_fields("config", warning=warning))
-    service = build_service(config, from_start=args.from_start, replay=args.replay)
-    logger.info(log_fields("leadline run", config=str(config.path), store=config.store.safe_url,
-                           sources=len(config.sources), caution=CAUTION))
-    return run_service(service)

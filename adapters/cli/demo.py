@@ -27,9 +27,9 @@ from leadline.detector.errors import DataError
 from leadline.detector.events import CAUTION
 
 from . import demo_scenario as scenario_module
-from .config import load_config
-from .event_formats import write_table
-from .run import build_service
+from ..config.file import load_config
+from ..service.wiring import build_service
+from .formats import write_table
 
 MARKER = ".leadline-demo"
 LIVE_SECONDS = 12.0

@@ -32,10 +32,10 @@ from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import ConfigError, DataError, SpecError, StoreError
 from leadline.detector.events import CAUTION
 
-from .config import Config, load_config
-from .shifts import ShiftWindow, shift_window
-from .store.connect import resolve_url
-from .store.eventstore import EventStore, open_store
+from ..config.file import Config, load_config
+from ..config.shifts import ShiftWindow, shift_window
+from ..store.connect import resolve_url
+from ..store.eventstore import EventStore, open_store
 
 UTC = timezone.utc
 DEFAULT_CONFIG = "/etc/leadline/leadline.toml"

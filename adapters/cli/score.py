@@ -22,7 +22,7 @@ from leadline.detector.rules.thresholds import budget_thresholds, sigma_threshol
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
-from .series_csv import read_series_csv
+from ..sources.series_csv import read_series_csv
 
 COLUMNS = ("timestamp", "value", "forecast", "error", "variance", "z", "lower", "upper")
 WEEK_S = 7 * 86400.0
@@ -181,7 +181,7 @@ def add_parser(subparsers) -> None:
 
 def _handle(args) -> int:
     if args.input is None:
-        from .examples import example_path
+        from ..examples import example_path
 
         args.input = str(example_path("booster-pressure.csv"))
     if not 0 < args.level < 1:

@@ -16,10 +16,10 @@ from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import DataError, SpecError, StoreError
 
 from . import review
-from .config_values import did_you_mean
+from ..config.values import did_you_mean
 from .review import add_store_options, open_review, show_time
-from .store.eventstore import EventStore
-from .store.records import StoredEvent
+from ..store.eventstore import EventStore
+from ..store.records import StoredEvent
 
 
 def _events(store: EventStore, ids: list[int], command: str) -> list[StoredEvent]:

@@ -1,0 +1,1 @@
+"""The service loop and its wiring from a config."""

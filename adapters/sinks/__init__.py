@@ -1,0 +1,1 @@
+"""Outputs: where alarm events go besides the store."""
