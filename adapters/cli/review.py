@@ -36,6 +36,7 @@ from ..config.file import Config, load_config
 from ..config.shifts import ShiftWindow, shift_window
 from ..store.connect import resolve_url
 from ..store.eventstore import EventStore, open_store
+from ..store.reads import EventQueries
 
 UTC = timezone.utc
 DEFAULT_CONFIG = "/etc/leadline/leadline.toml"
@@ -58,9 +59,9 @@ def add_store_options(parser) -> None:
 
 @dataclass
 class Review:
-    """An open store and what the config says about reading it."""
+    """An open store (its review side) and what the config says about reading it."""
 
-    store: EventStore
+    store: EventQueries
     config: Config | None
     zone: tzinfo
     zone_name: str
