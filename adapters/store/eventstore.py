@@ -36,7 +36,8 @@ from .connect import create_store_engine, resolve_url, write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .migrations import ensure_schema
 from .reads import EventQueries
-from .writer import WriteBuffer, insert_for, write_buffer
+from .dialects import insert_for
+from .writer import WriteBuffer, write_buffer
 
 
 class EventWriter(StoreHandle):
