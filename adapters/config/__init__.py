@@ -8,5 +8,6 @@ entries), :mod:`.shifts` (operator shifts as UTC windows).
 """
 
 from .file import Config, config_from_text, load_config
+from .shifts import ShiftWindow, shift_window
 
-__all__ = ["Config", "config_from_text", "load_config"]
+__all__ = ["Config", "ShiftWindow", "config_from_text", "load_config", "shift_window"]
