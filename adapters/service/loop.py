@@ -48,6 +48,7 @@ from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
 from leadline.detector.errors import LeadlineError, StoreError
+from leadline.detector.events import AlarmEvent
 from leadline.detector.readings import Reading
 
 from ..ports import AlarmPublisher, EventSink, Source
@@ -128,7 +129,7 @@ class Service:
         self._pool: ProcessPoolExecutor | None = None
         self._fits: dict[Future, Any] = {}
         self._pending_acks: list[tuple[Source, list[Reading]]] = []
-        self._to_publish: list[Any] = []
+        self._to_publish: list[AlarmEvent] = []
         self._last_commit = time.monotonic()
         self._last_checkpoint = time.monotonic()
         self._last_tick = 0.0
