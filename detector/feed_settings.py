@@ -4,7 +4,7 @@ Every setting is checked when the settings are built, so a bad value is a
 :class:`~leadline.detector.errors.ConfigError` naming the setting at load
 time, not a failure at the end of a feed's learning phase. The defaults
 written here are the only ones: the config files read them from these
-fields (:mod:`leadline.adapters.config_feeds`).
+fields (:mod:`leadline.adapters.config.feeds`).
 """
 
 from __future__ import annotations

@@ -143,7 +143,7 @@ def crash_row_of(start: datetime) -> int:
 
 
 def _crash_writer(url: str, journal: str, seed: int) -> int:
-    from leadline.adapters.sources.base import RejectSample, SourceOffset
+    from leadline.adapters.ports import RejectSample, SourceOffset
     from leadline.adapters.store import open_store
     from leadline.detector.events import AlarmEvent
 

@@ -15,10 +15,10 @@ from pathlib import Path
 
 import pytest
 
-from leadline.adapters import config as config_mod
+from leadline.adapters.config import file as config_mod
 from leadline.adapters.cli import main
 from leadline.adapters.config import config_from_text, load_config
-from leadline.adapters.config_feeds import BUDGET_LIMIT_KEYS, LIMIT_CHECKS, SIGMA_LIMIT_KEYS, BUILTIN_DEFAULTS
+from leadline.adapters.config.feeds import BUDGET_LIMIT_KEYS, LIMIT_CHECKS, SIGMA_LIMIT_KEYS, BUILTIN_DEFAULTS
 from leadline.detector.errors import ConfigError
 from leadline.detector.rules.thresholds import budget_thresholds, sigma_thresholds
 

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from leadline.adapters.sources.base import Source
+from leadline.adapters.ports import Source
 from leadline.adapters.sources.csv_follow import CsvFollower, CsvOrigin
 from leadline.adapters.sources.csv_rows import CsvLayout
 

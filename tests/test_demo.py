@@ -6,8 +6,8 @@ import io
 
 import pytest
 
-from leadline.adapters.demo import run_demo
-from leadline.adapters.demo_scenario import build_scenario
+from leadline.adapters.cli.demo import run_demo
+from leadline.adapters.cli.demo_scenario import build_scenario
 
 
 @pytest.fixture(scope="module")

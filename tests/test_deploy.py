@@ -70,7 +70,7 @@ def test_exec_start_is_a_command_of_the_cli():
     parser = build_parser()
     subcommands = next(a for a in parser._actions if a.dest == "command").choices
     assert argv[1] in subcommands, (
-        f"the unit runs `leadline {argv[1]}`, but adapters/cli.py registers no {argv[1]!r} subcommand "
+        f"the unit runs `leadline {argv[1]}`, but adapters/cli/ registers no {argv[1]!r} subcommand "
         f"(registered: {sorted(subcommands)})")
     options = {s for a in subcommands[argv[1]]._actions for s in a.option_strings}
     assert "--config" in options

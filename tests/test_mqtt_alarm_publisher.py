@@ -12,7 +12,7 @@ import pytest
 from mqtt_broker import MosquittoBroker, mosquitto_binary
 from paho.mqtt.enums import CallbackAPIVersion
 
-from leadline.adapters.sources.alarm_publisher import AlarmPublisher
+from leadline.adapters.sinks.alarm_publisher import MqttAlarmPublisher as AlarmPublisher
 from leadline.adapters.sources.mqtt_connection import MqttSettings
 from leadline.detector.errors import ConfigError, SourceError
 from leadline.detector.events import CAUTION, AlarmEvent

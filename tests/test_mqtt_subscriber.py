@@ -12,7 +12,7 @@ from datetime import datetime, timezone
 import pytest
 from mqtt_broker import MosquittoBroker, QosOnePublisher, make_password_file, mosquitto_binary
 
-from leadline.adapters.sources.base import Source
+from leadline.adapters.ports import Source
 from leadline.adapters.sources.mqtt_connection import MqttSettings
 from leadline.adapters.sources.mqtt_subscriber import MqttSubscriber, Subscription
 from leadline.adapters.sources.payloads import JsonPayload, NumberPayload

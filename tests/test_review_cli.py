@@ -18,13 +18,13 @@ from zoneinfo import ZoneInfo
 
 import pytest
 
-from leadline.adapters import review
+from leadline.adapters.cli import review
 from leadline.adapters.cli import main
 from leadline.adapters.config import config_from_text
-from leadline.adapters.event_formats import CSV_COLUMNS
-from leadline.adapters.shifts import shift_window
-from leadline.adapters.sources.alarm_publisher import event_payload
-from leadline.adapters.sources.base import RejectSample
+from leadline.adapters.cli.formats import CSV_COLUMNS
+from leadline.adapters.config.shifts import shift_window
+from leadline.adapters.sinks.alarm_publisher import event_payload
+from leadline.adapters.ports import RejectSample
 from leadline.adapters.store.eventstore import open_store
 from leadline.detector.errors import ConfigError, DataError
 from leadline.detector.events import CAUTION, AlarmEvent

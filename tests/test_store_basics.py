@@ -16,7 +16,7 @@ from zoneinfo import ZoneInfo
 import pytest
 from sqlalchemy import text
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.adapters.store import EventStore, open_store
 from leadline.adapters.store.schema import events as events_table
 from leadline.adapters.store.writer import REJECT_SAMPLE_LIMIT, EventUpsert, event_row

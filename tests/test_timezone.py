@@ -93,7 +93,7 @@ def test_local_terms_fit_a_local_daily_curve_better_than_fixed_offset_terms(octo
 
 def test_config_timezone_reaches_the_feed_calendar(tmp_path):
     from leadline.adapters.config import config_from_text
-    from leadline.adapters.run import feed_settings
+    from leadline.adapters.service.wiring import feed_settings
     from leadline.detector.errors import ConfigError
 
     text = '[feeds.defaults]\nseasonality = ["1d:2"]\ntimezone = "Europe/London"\n'

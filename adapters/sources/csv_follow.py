@@ -8,7 +8,7 @@ Positions
 Files are read in binary mode with our own byte counter. A reading's
 ``origin`` is a :class:`CsvOrigin`: the file's identity, the line number and
 the byte offset just past the line. :meth:`CsvFollower.durable_marks` turns
-the readings handed to the store into :class:`~leadline.adapters.sources.base.SourceOffset`
+the readings handed to the store into :class:`~leadline.adapters.ports.SourceOffset`
 marks (one per path), which the service commits in the same transaction as
 the events. At start-up the follower takes those marks back
 (``start_offsets``) and resumes exactly after the last committed line.
@@ -52,7 +52,7 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import Callable, Mapping, NamedTuple, Sequence
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.adapters.sources.csv_rows import CsvLayout, RowParser
 from leadline.adapters.sources.rejects import RejectLog
 from leadline.detector.errors import RejectError, SourceError
@@ -350,7 +350,7 @@ class _Tail:
 
 
 class CsvFollower:
-    """A :class:`~leadline.adapters.sources.base.Source` following CSV files.
+    """A :class:`~leadline.adapters.ports.Source` following CSV files.
 
     Parameters
     ----------

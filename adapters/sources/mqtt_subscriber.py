@@ -66,7 +66,7 @@ from typing import Any, Iterable, Mapping, NamedTuple, Sequence
 import paho.mqtt.client as mqtt
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.adapters.sources.mqtt_connection import MqttSettings, build_client, connect_async
 from leadline.adapters.sources.payloads import PayloadParser
 from leadline.adapters.sources.rejects import RejectLog
@@ -184,7 +184,7 @@ class _BoundedQueue:
 
 
 class MqttSubscriber:
-    """A :class:`~leadline.adapters.sources.base.Source` fed by MQTT subscriptions.
+    """A :class:`~leadline.adapters.ports.Source` fed by MQTT subscriptions.
 
     Parameters
     ----------

@@ -14,7 +14,7 @@ import threading
 from collections import Counter
 from datetime import datetime, timezone
 
-from leadline.adapters.sources.base import RejectSample
+from leadline.adapters.ports import RejectSample
 from leadline.detector.errors import RejectError
 
 logger = logging.getLogger("leadline.sources.rejects")

@@ -17,6 +17,8 @@ from typing import Any
 from sqlalchemy import BigInteger, DateTime, Double, Text
 from sqlalchemy.types import TypeDecorator
 
+from .dialects import stores_naive_utc
+
 _TWO_63 = 1 << 63
 _TWO_64 = 1 << 64
 
@@ -42,7 +44,7 @@ class UTCDateTime(TypeDecorator):
         if value.tzinfo is None or value.utcoffset() is None:
             raise ValueError(f"expected a timezone-aware UTC datetime, got naive {value.isoformat()}")
         utc = value.astimezone(timezone.utc)
-        if dialect.name == "sqlite":
+        if stores_naive_utc(dialect):
             return utc.replace(tzinfo=None)
         return utc
 

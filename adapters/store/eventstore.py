@@ -1,15 +1,16 @@
-"""The event store: the one object the service and the CLI talk to.
+"""The event store: the service's write side, and the store that is both sides.
 
 Writes of the service loop are *staged* (``stage_event``, ``stage_checkpoint``,
-``stage_offset``, ``stage_reject``) and committed together by :meth:`EventStore.flush`
+``stage_offset``, ``stage_reject``) and committed together by :meth:`EventWriter.flush`
 in one short transaction: the events, the checkpoints and the CSV offsets of
 the rows that produced them become durable at once, or not at all. The loop
-calls :meth:`EventStore.flush_due` every turn and flushes when it says so
+calls :meth:`EventWriter.flush_due` every turn and flushes when it says so
 (every ``flush_interval_s``, or as soon as ``max_staged_events`` are staged).
+Model records are written at once, each in its own transaction.
 
-Operator actions (``add_note``, ``shelve``) and model records are written
-at once, each in its own transaction. Reads (``events``, counts) run in read
-transactions, which on SQLite in WAL mode never wait for the writer.
+Operator notes and the reads of the review commands are the other side,
+:class:`~.reads.EventQueries`. :class:`EventStore` is both, and
+:func:`open_store` opens one.
 
 An ``EventStore`` may be shared between threads (staging and flushing are
 serialised by a lock), but each process should open its own.
@@ -21,44 +22,28 @@ import math
 import numbers
 import threading
 import time
-from datetime import datetime, timezone
+from datetime import datetime
 from typing import Any, Callable
 
 from sqlalchemy import Engine, func, select
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.errors import StoreError
 from leadline.detector.events import AlarmEvent
 
-from . import queries, schema
-from .connect import create_store_engine, read_transaction, resolve_url, safe_url, translate_errors, write_transaction
+from . import schema
+from .connect import create_store_engine, resolve_url, write_transaction
+from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .migrations import ensure_schema
-from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
-from .writer import WriteBuffer, insert_for, write_buffer
-
-_NOTE_KINDS = ("ack", "comment")
-
-
-def _utc_now() -> datetime:
-    return datetime.now(timezone.utc)
+from .reads import EventQueries
+from .dialects import insert_for
+from .writer import WriteBuffer, write_buffer
 
 
-def _require_utc(name: str, value: Any) -> datetime:
-    if not isinstance(value, datetime) or value.tzinfo is None or value.utcoffset() is None:
-        raise StoreError(f"{name} must be a timezone-aware UTC datetime, got {value!r}")
-    return value.astimezone(timezone.utc)
+class EventWriter(StoreHandle):
+    """The service's side of the store: staged writes committed in one transaction.
 
-
-def _require_text(name: str, value: Any) -> str:
-    if not isinstance(value, str) or not value.strip():
-        raise StoreError(f"{name} must be a non-empty string, got {value!r}")
-    return value
-
-
-class EventStore:
-    """Events, notes, models, checkpoints, offsets and rejects in one database.
-
-    Build it with :func:`open_store`.
+    The :class:`~leadline.adapters.ports.EventSink` of the service loop.
 
     Parameters
     ----------
@@ -86,30 +71,14 @@ class EventStore:
             raise StoreError(f"flush_interval_s must be a positive number of seconds, got {flush_interval_s}")
         if max_staged_events < 1:
             raise StoreError(f"max_staged_events must be >= 1, got {max_staged_events}")
-        self._engine = engine
+        super().__init__(engine, clock=clock)
         self.flush_interval_s = float(flush_interval_s)
         self.max_staged_events = int(max_staged_events)
-        self._clock = clock or _utc_now
         self._buffer = WriteBuffer()
         self._lock = threading.RLock()
         self._last_flush = time.monotonic()
-        self._closed = False
 
     # ------------------------------------------------------------------ info
-    @property
-    def url(self) -> str:
-        """The database URL, password hidden."""
-        return safe_url(self._engine.url)
-
-    @property
-    def backend(self) -> str:
-        """``"sqlite"`` or ``"postgresql"``."""
-        return self._engine.dialect.name
-
-    @property
-    def engine(self) -> Engine:
-        return self._engine
-
     @property
     def staged_events(self) -> int:
         """Distinct events staged and not yet flushed."""
@@ -119,10 +88,6 @@ class EventStore:
     def staged_items(self) -> int:
         """Everything staged: events, checkpoints, offsets, reject tallies."""
         return len(self._buffer)
-
-    def _check_open(self) -> None:
-        if self._closed:
-            raise StoreError(f"the event store {self.url} is closed")
 
     # ----------------------------------------------------------- immediate writes
     def ensure_feed(
@@ -200,59 +165,6 @@ class EventStore:
                 )
             )
         return version
-
-    def add_note(self, event_id: int, kind: str, operator: str, text: str, at: datetime | None = None) -> int:
-        """Append an acknowledgement (``kind="ack"``) or comment to an event.
-
-        Notes are never edited or deleted (the database refuses it). Returns
-        the note's id. Raises :class:`StoreError` for an unknown event id.
-        """
-        self._check_open()
-        if kind not in _NOTE_KINDS:
-            raise StoreError(f"note kind must be one of {_NOTE_KINDS} (shelving: use shelve()), got {kind!r}")
-        _require_text("operator", operator)
-        if kind == "comment":
-            _require_text("comment text", text)
-        at = _require_utc("at", at) if at is not None else self._clock()
-        ev, n = schema.events, schema.event_notes
-        with write_transaction(self._engine, f"adding a note to event {event_id}") as conn:
-            feed_id = conn.execute(select(ev.c.feed_id).where(ev.c.id == int(event_id))).scalar()
-            if feed_id is None:
-                raise StoreError(f"no event with id {event_id} in {self.url}")
-            res = conn.execute(
-                n.insert().values(
-                    event_id=int(event_id), feed_id=feed_id, kind=kind, operator=operator, text=text or "", at=at
-                )
-            )
-            return int(res.inserted_primary_key[0])
-
-    def shelve(
-        self, feed_id: str, operator: str, text: str, until: datetime, at: datetime | None = None
-    ) -> int:
-        """Shelve a feed until ``until``: append a shelving note; returns its id.
-
-        The most recent shelving note of a feed decides (see
-        :meth:`shelved_feeds`), so shelving again with ``until`` at or before
-        now ends a shelving early; nothing is edited.
-        """
-        self._check_open()
-        _require_text("operator", operator)
-        _require_text("shelving reason (text)", text)
-        until = _require_utc("until", until)
-        at = _require_utc("at", at) if at is not None else self._clock()
-        if until < at:
-            raise StoreError(f"shelving of {feed_id!r}: until {until.isoformat()} is before {at.isoformat()}")
-        f, n = schema.feeds, schema.event_notes
-        with write_transaction(self._engine, f"shelving feed {feed_id!r}") as conn:
-            if conn.execute(select(f.c.feed_id).where(f.c.feed_id == feed_id)).scalar() is None:
-                raise StoreError(f"cannot shelve unknown feed {feed_id!r} in {self.url}")
-            res = conn.execute(
-                n.insert().values(
-                    event_id=None, feed_id=feed_id, kind="shelve", operator=operator, text=text, at=at,
-                    expires_at=until,
-                )
-            )
-            return int(res.inserted_primary_key[0])
 
     # ---------------------------------------------------------------- staging
     def stage_event(self, ev: AlarmEvent) -> None:
@@ -334,99 +246,6 @@ class EventStore:
                 return True
             return now - self._last_flush >= self.flush_interval_s
 
-    # ------------------------------------------------------------------ reads
-    def _read(self, what: str, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
-        self._check_open()
-        with read_transaction(self._engine, what) as conn:
-            return fn(conn, *args, **kwargs)
-
-    def load_offsets(self, source: str) -> dict[str, SourceOffset]:
-        """The committed offsets of one source, keyed by file path."""
-        return self._read(f"loading offsets of {source!r}", queries.load_offsets, source)
-
-    def load_checkpoints(self) -> dict[str, tuple[bytes, int]]:
-        """``{feed_id: (state bytes, model_version)}`` as last committed."""
-        return self._read("loading checkpoints", queries.load_checkpoints)
-
-    def events(
-        self,
-        since: datetime | None = None,
-        until: datetime | None = None,
-        feed_pattern: str | None = None,
-        rule: str | None = None,
-        severity: str | None = None,
-        unacked: bool | None = None,
-        limit: int | None = None,
-    ) -> list[StoredEvent]:
-        """Events with ``since <= start < until``, oldest first, with their notes.
-
-        ``feed_pattern`` is a case-sensitive glob on the feed id;
-        ``unacked=True`` keeps unacknowledged events, ``False`` acknowledged
-        ones. Committed events only (staged ones appear after :meth:`flush`).
-        """
-        since = None if since is None else _require_utc("since", since)
-        until = None if until is None else _require_utc("until", until)
-        try:
-            return self._read(
-                "listing events",
-                queries.list_events,
-                since=since,
-                until=until,
-                feed_pattern=feed_pattern,
-                rule=rule,
-                severity=severity,
-                unacked=unacked,
-                limit=limit,
-            )
-        except ValueError as exc:
-            raise StoreError(str(exc)) from exc
-
-    def event(self, event_id: int) -> StoredEvent | None:
-        """One event by id, with its notes, or None."""
-        return self._read(f"reading event {event_id}", queries.get_event, int(event_id))
-
-    def standing_events(self, now: datetime, older_than_h: float = 24.0) -> list[StoredEvent]:
-        """Events still active that started at least ``older_than_h`` hours before ``now``."""
-        return self._read("listing standing events", queries.standing_events, _require_utc("now", now), older_than_h)
-
-    def alarm_counts_per_hour(
-        self, since: datetime, until: datetime, severity: str | None = None
-    ) -> list[HourCount]:
-        """Events started per UTC hour over the whole hours overlapping
-        ``[since, until)``, zero-count hours included."""
-        since, until = _require_utc("since", since), _require_utc("until", until)
-        try:
-            return self._read("counting alarms per hour", queries.alarm_counts_per_hour, since, until, severity)
-        except ValueError as exc:
-            raise StoreError(str(exc)) from exc
-
-    def alarm_counts_per_feed(self, since: datetime, until: datetime) -> list[FeedCount]:
-        """Events started in ``[since, until)`` per feed, most first."""
-        since, until = _require_utc("since", since), _require_utc("until", until)
-        return self._read("counting alarms per feed", queries.alarm_counts_per_feed, since, until)
-
-    def shelved_feeds(self, now: datetime) -> list[Note]:
-        """The shelving note in force of every feed shelved at ``now``."""
-        return self._read("listing shelved feeds", queries.shelved_feeds, _require_utc("now", now))
-
-    def reject_counts(self) -> list[RejectCount]:
-        return self._read("reading reject counts", queries.reject_counts)
-
-    def reject_samples(self, source: str | None = None, reason: str | None = None) -> list[RejectSample]:
-        """The kept samples of rejected input, oldest first."""
-        return self._read("reading reject samples", queries.reject_samples, source, reason)
-
-    def feeds(self) -> list[Feed]:
-        return self._read("listing feeds", queries.feeds)
-
-    def latest_models(self) -> dict[str, ModelRecord]:
-        """The latest model record of each feed."""
-        return self._read("reading models", queries.latest_models)
-
-    def models(self, feed_id: str) -> list[ModelRecord]:
-        """Every model version of one feed, oldest first."""
-        return self._read(f"reading models of {feed_id!r}", queries.models_of, feed_id)
-
     # ------------------------------------------------------------------ close
     def close(self) -> None:
         """Flush what is staged, then release the connections.
@@ -441,15 +260,17 @@ class EventStore:
                 if len(self._buffer):
                     self.flush()
         finally:
-            self._closed = True
-            with translate_errors("closing the store", self._engine.url):
-                self._engine.dispose()
+            super().close()
 
-    def __enter__(self) -> "EventStore":
-        return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+class EventStore(EventWriter, EventQueries):
+    """Events, notes, models, checkpoints, offsets and rejects in one database.
+
+    Build it with :func:`open_store`. It is both sides of the store: the
+    service writes through :class:`EventWriter` (its
+    :class:`~leadline.adapters.ports.EventSink`), the review commands read
+    through :class:`~.reads.EventQueries`. Parameters: see :class:`EventWriter`.
+    """
 
 
 def open_store(

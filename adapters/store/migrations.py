@@ -15,7 +15,7 @@ the highest is in force. Opening a database
 
 Every step is one function in :data:`UPGRADES`. DDL is transactional on both
 SQLite (here the driver's implicit commits are switched off, see
-:mod:`.connect`) and PostgreSQL, so a crash mid-step leaves the old version.
+:mod:`.dialects`) and PostgreSQL, so a crash mid-step leaves the old version.
 """
 
 from __future__ import annotations
@@ -23,12 +23,13 @@ from __future__ import annotations
 from datetime import datetime, timezone
 from typing import Callable
 
-from sqlalchemy import BigInteger, Connection, Engine, bindparam, func, inspect, select, text, update
+from sqlalchemy import BigInteger, Connection, Engine, bindparam, func, inspect, select, update
 
 from leadline.detector.errors import SchemaVersionError
 
 from . import schema
 from .connect import read_transaction, safe_url, write_transaction
+from .dialects import lock_schema as _lock_schema
 
 _BACKFILL_BATCH = 5000
 
@@ -94,14 +95,6 @@ def _stamp(conn: Connection, version: int) -> None:
             version=version, applied_at=datetime.now(timezone.utc), description=_DESCRIPTIONS[version]
         )
     )
-
-
-def _lock_schema(conn: Connection) -> None:
-    # SQLite: BEGIN IMMEDIATE already serialises writers. PostgreSQL: two
-    # processes creating a fresh schema at once would collide, so take a
-    # transaction-scoped advisory lock (key: an arbitrary fixed number).
-    if conn.dialect.name == "postgresql":
-        conn.execute(text("SELECT pg_advisory_xact_lock(7406215301)"))
 
 
 def create_schema(conn: Connection, version: int = schema.SCHEMA_VERSION) -> None:

@@ -14,7 +14,7 @@ from typing import Any, Iterable, Sequence
 
 from sqlalchemy import Connection, and_, exists, func, select
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.events import SEVERITIES, AlarmEvent
 
 from . import schema

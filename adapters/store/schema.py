@@ -48,7 +48,6 @@ Indexes (and the query each one serves)
 from __future__ import annotations
 
 from sqlalchemy import (
-    DDL,
     BigInteger,
     Double,
     CheckConstraint,
@@ -62,13 +61,12 @@ from sqlalchemy import (
     Table,
     Text,
     UniqueConstraint,
-    event,
-    text,
 )
 
 from leadline.detector.events import SEVERITIES
 
 from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
+from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
 SCHEMA_VERSION = 2
@@ -84,22 +82,7 @@ _NAMING = {
 }
 
 # A surrogate id: INTEGER PRIMARY KEY (the rowid) on SQLite, BIGINT elsewhere.
-_Id = BigInteger().with_variant(Integer(), "sqlite")
-
-_SQLITE_NOTES_APPEND_ONLY = (
-    "CREATE TRIGGER event_notes_no_update BEFORE UPDATE ON event_notes "
-    "BEGIN SELECT RAISE(ABORT, 'event notes are append-only (audit trail): UPDATE refused'); END",
-    "CREATE TRIGGER event_notes_no_delete BEFORE DELETE ON event_notes "
-    "BEGIN SELECT RAISE(ABORT, 'event notes are append-only (audit trail): DELETE refused'); END",
-)
-
-_PG_NOTES_APPEND_ONLY = (
-    "CREATE OR REPLACE FUNCTION leadline_notes_append_only() RETURNS trigger "
-    "LANGUAGE plpgsql AS $$ BEGIN RAISE EXCEPTION "
-    "'event notes are append-only (audit trail): %% refused', TG_OP; END $$",
-    "CREATE TRIGGER event_notes_append_only BEFORE UPDATE OR DELETE ON event_notes "
-    "FOR EACH ROW EXECUTE FUNCTION leadline_notes_append_only()",
-)
+_Id = SURROGATE_ID
 
 
 def _utc(name: str, nullable: bool = False) -> Column:
@@ -202,8 +185,7 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     Index(
         "ix_events_standing",
         events.c.start_at,
-        sqlite_where=text("end_at IS NULL"),
-        postgresql_where=text("end_at IS NULL"),
+        **partial_index_where("end_at IS NULL"),
     )
     if version >= 2:
         Index("ix_events_hour", events.c.start_hour, events.c.severity)
@@ -230,10 +212,7 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     )
     Index("ix_event_notes_event", notes.c.event_id, notes.c.kind)
     Index("ix_event_notes_feed", notes.c.feed_id, notes.c.kind, notes.c.at)
-    for stmt in _SQLITE_NOTES_APPEND_ONLY:
-        event.listen(notes, "after_create", DDL(stmt).execute_if(dialect="sqlite"))
-    for stmt in _PG_NOTES_APPEND_ONLY:
-        event.listen(notes, "after_create", DDL(stmt).execute_if(dialect="postgresql"))
+    make_notes_append_only(notes)
 
     Table(
         "checkpoints",

@@ -29,18 +29,18 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass, field, replace
-from datetime import datetime, timezone
+from datetime import datetime
 from typing import Any, Callable
 
 from sqlalchemy import Connection, and_, case, delete, func, literal_column, or_, select
-from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.engine import Dialect
 
-from leadline.adapters.sources.base import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.events import SEVERITIES, AlarmEvent
 
 from . import schema
 from .coltypes import dumps_json
+from .dialects import driver_time_for, insert_for
 
 #: Reject samples kept per (source, reason); older ones are deleted.
 REJECT_SAMPLE_LIMIT = 20
@@ -117,18 +117,6 @@ class WriteBuffer:
         tally.samples.append(sample)
 
 
-_INSERTS: dict[str, Callable[..., Any]] = {"sqlite": sqlite.insert, "postgresql": postgresql.insert}
-
-
-def insert_for(conn: Connection | Dialect) -> Callable[..., Any]:
-    """The dialect's ``insert`` (the one with ``on_conflict_do_update``)."""
-    dialect = conn.dialect if isinstance(conn, Connection) else conn
-    try:
-        return _INSERTS[dialect.name]
-    except KeyError:
-        raise ValueError(f"no upsert for dialect {dialect.name!r}") from None
-
-
 def event_row(ev: AlarmEvent, now: datetime) -> dict[str, Any]:
     """The ``events`` columns of an event as Python values (no surrogate id).
 
@@ -196,17 +184,6 @@ def _nan_to_none(x: float) -> float | None:
     return None if x != x else x
 
 
-def _sqlite_time(t: datetime | None) -> str | None:
-    # The text SQLAlchemy's SQLite DATETIME writes: "YYYY-MM-DD HH:MM:SS.ffffff" (UTC).
-    if t is None:
-        return None
-    return t.astimezone(timezone.utc).replace(tzinfo=None).isoformat(" ", "microseconds")
-
-
-def _pg_time(t: datetime | None) -> datetime | None:
-    return None if t is None else t.astimezone(timezone.utc)
-
-
 class EventUpsert:
     """The event upsert, compiled once per dialect, executed straight on the driver.
 
@@ -224,7 +201,7 @@ class EventUpsert:
             dialect=dialect, column_keys=list(_EVENT_COLUMNS), for_executemany=True  # no RETURNING
         )
         self.sql = str(compiled)
-        self._time = _sqlite_time if dialect.name == "sqlite" else _pg_time
+        self._time = driver_time_for(dialect)
         self.positional = bool(compiled.positional)
         names = tuple(compiled.positiontup or ()) if self.positional else tuple(compiled.binds)
         if sorted(names) != sorted(_EVENT_COLUMNS):

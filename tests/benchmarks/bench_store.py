@@ -34,7 +34,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # tests/ for store
 
 from leadline.adapters.store import open_store, schema  # noqa: E402
 from leadline.adapters.store.connect import write_transaction  # noqa: E402
-from leadline.adapters.store.writer import event_row, insert_for, _event_upsert  # noqa: E402
+from leadline.adapters.store.dialects import insert_for  # noqa: E402
+from leadline.adapters.store.writer import event_row, _event_upsert  # noqa: E402
 from leadline.detector.events import AlarmEvent  # noqa: E402
 from store_helpers import PgSchema, pg_unreachable_reason  # noqa: E402
 

@@ -20,7 +20,7 @@ import numpy as np
 
 from leadline.detector.errors import DataError, RejectError
 
-from .sources.timeparse import TimeParser
+from .timeparse import TimeParser
 
 
 #: The sources' parsers (:mod:`.sources.timeparse`): epoch seconds, and ISO 8601 with UTC for a time without offset.

@@ -29,8 +29,8 @@ from datetime import date, datetime, timedelta, timezone
 
 from leadline.detector.errors import ConfigError
 
-from .config import Shift, ShiftsConfig
-from .config_values import did_you_mean
+from .file import Shift, ShiftsConfig
+from .values import did_you_mean
 
 UTC = timezone.utc
 #: Local dates searched on each side of today (a shift lasts at most 24 h).

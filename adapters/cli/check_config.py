@@ -10,8 +10,8 @@ from __future__ import annotations
 import sys
 from typing import TextIO
 
-from .config import Config, load_config
-from .config_feeds import show
+from ..config.file import Config, load_config
+from ..config.feeds import show
 
 
 def _seconds(s: float) -> str:

@@ -27,9 +27,9 @@ from leadline.detector.errors import DataError
 from leadline.detector.events import CAUTION
 
 from . import demo_scenario as scenario_module
-from .config import load_config
-from .event_formats import write_table
-from .run import build_service
+from ..config.file import load_config
+from ..service.wiring import build_service, open_configured_store
+from .formats import write_table
 
 MARKER = ".leadline-demo"
 LIVE_SECONDS = 12.0
@@ -166,7 +166,8 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     progress(f"wrote {history_rows} readings of history for {len(scenario.feeds)} feeds of the invented "
              f"Fenwick Vale water district to {folder / 'telemetry'}")
     config = load_config(folder / "leadline.toml")
-    service = build_service(config, replay=True)
+    store = open_configured_store(config)
+    service = build_service(config, replay=True, store=store)
     service.summary_interval_s = 5.0
     failure: list[BaseException] = []
 
@@ -191,7 +192,6 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     thread.join(timeout=60.0)
     if failure:
         raise failure[0]
-    store = service.store
     events = store.events()
     progress(f"done: {service.readings_total} readings, {len(events)} events")
     zone = ZoneInfo("Europe/London")

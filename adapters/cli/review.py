@@ -32,10 +32,11 @@ from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import ConfigError, DataError, SpecError, StoreError
 from leadline.detector.events import CAUTION
 
-from .config import Config, load_config
-from .shifts import ShiftWindow, shift_window
-from .store.connect import resolve_url
-from .store.eventstore import EventStore, open_store
+from ..config.file import Config, load_config
+from ..config.shifts import ShiftWindow, shift_window
+from ..store.connect import resolve_url
+from ..store.eventstore import EventStore, open_store
+from ..store.reads import EventQueries
 
 UTC = timezone.utc
 DEFAULT_CONFIG = "/etc/leadline/leadline.toml"
@@ -58,9 +59,9 @@ def add_store_options(parser) -> None:
 
 @dataclass
 class Review:
-    """An open store and what the config says about reading it."""
+    """An open store (its review side) and what the config says about reading it."""
 
-    store: EventStore
+    store: EventQueries
     config: Config | None
     zone: tzinfo
     zone_name: str

@@ -1,16 +1,17 @@
-"""``leadline run --config FILE``: build the service from a config and run it.
+"""Build the service from a config, and run it with SIGTERM and SIGINT wired.
 
-The config (:mod:`.config`) names the sources, the store, the feeds'
-options, the refit policy and the alarm publisher. This module turns it
-into the running parts: one :class:`~.sources.csv_follow.CsvFollower` per
+The config (:mod:`leadline.adapters.config`) names the sources, the store,
+the feeds' options, the refit policy and the alarm publisher. This module
+turns it into the running parts: one
+:class:`~leadline.adapters.sources.csv_follow.CsvFollower` per
 ``[[sources.csv]]`` (resuming from the offsets committed in the store),
-one :class:`~.sources.mqtt_subscriber.MqttSubscriber` per
+one :class:`~leadline.adapters.sources.mqtt_subscriber.MqttSubscriber` per
 ``[[sources.mqtt]]``, the engine with each feed's
 :class:`~leadline.detector.engine.FeedSettings` (its checkpoints restored,
 so a restart resumes without a learning phase), the store, the publisher,
-and the :class:`~.service.Service` loop. SIGTERM and SIGINT stop it
-cleanly: sources stopped, queue drained, events and checkpoints flushed,
-exit 0.
+and the :class:`~.loop.Service` loop. SIGTERM and SIGINT stop it cleanly
+(:func:`run_service`): sources stopped, queue drained, events and
+checkpoints flushed, exit 0. ``leadline run`` is :mod:`leadline.adapters.cli.run`.
 """
 
 from __future__ import annotations
@@ -19,17 +20,20 @@ import dataclasses
 import logging
 import signal
 import sys
-from typing import Any
+from typing import TYPE_CHECKING
 
 from leadline.detector.engine import Engine, FeedSettings
 from leadline.detector.errors import ConfigError, StateFormatError
-from leadline.detector.events import CAUTION
 from leadline.detector.rules.monitor import MonitorConfig
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
-from .config import Config, load_config
-from .service import Service, log_fields
+from ..config.file import Config
+from ..ports import Source
+from .loop import Service, log_fields
+
+if TYPE_CHECKING:
+    from ..store import EventStore
 
 logger = logging.getLogger("leadline.run")
 
@@ -75,31 +79,30 @@ def feed_settings(config: Config, feed_id: str) -> FeedSettings:
     )
 
 
-class _Publisher:
-    """Adapts :class:`~.sources.alarm_publisher.AlarmPublisher` to ``publish(events)``."""
+def open_configured_store(config: Config) -> EventStore:
+    """The store of ``[store]``, with its flush interval and batch size."""
+    from ..store import open_store
 
-    def __init__(self, publisher: Any) -> None:
-        self.publisher = publisher
-
-    def publish(self, events) -> None:
-        for event in events:
-            self.publisher.publish(event)
+    return open_store(config.store.url, flush_interval_s=config.store.flush_interval_s,
+                      max_staged_events=config.store.flush_events)
 
 
 def build_service(config: Config, *, from_start: bool = False, refit_workers: int | None = None,
-                  replay: bool = False) -> Service:
+                  replay: bool = False, store: EventStore | None = None) -> Service:
     """Every running part of the service, wired; nothing is started yet.
 
     ``replay=True`` runs on reading time instead of the wall clock: the
     engine's ticks follow the newest reading, and readings are not checked
     against the wall clock (for backfills of history and the demo).
+    ``store``: an open store to use (the demo reads its events afterwards);
+    default :func:`open_configured_store`. Either way the service's
+    shutdown (:func:`run_service`) or the caller closes it.
     """
-    from .sources.csv_follow import CsvFollower
-    from .sources.mqtt_subscriber import MqttSubscriber
-    from .store import open_store
+    from ..sources.csv_follow import CsvFollower
+    from ..sources.mqtt_subscriber import MqttSubscriber
 
-    store = open_store(config.store.url, flush_interval_s=config.store.flush_interval_s,
-                       max_staged_events=config.store.flush_events)
+    if store is None:
+        store = open_configured_store(config)
     cache: dict[str, FeedSettings] = {}
 
     def settings_for(feed_id: str) -> FeedSettings:
@@ -116,7 +119,7 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
             logger.warning(log_fields("checkpoint not used; the feed learns again", feed=feed_id, error=str(exc)))
         else:
             logger.info(log_fields("checkpoint restored", feed=feed_id, model_version=version))
-    sources: list[Any] = []
+    sources: list[Source] = []
     for csv_source in config.csv_sources:
         sources.append(CsvFollower(csv_source.name, csv_source.path, csv_source.layout(),
                                    start_offsets=store.load_offsets(csv_source.name),
@@ -126,12 +129,11 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
                                       queue_max_messages=mqtt_source.queue_size))
     publisher = None
     if config.publish is not None:
-        from .sources.alarm_publisher import AlarmPublisher
+        from ..sinks.alarm_publisher import MqttAlarmPublisher
 
-        inner = AlarmPublisher(config.publisher_settings(), config.publish.topic_template,
-                               config.publish.status_topic_template, config.publish.max_queued_messages)
-        inner.start()
-        publisher = _Publisher(inner)
+        publisher = MqttAlarmPublisher(config.publisher_settings(), config.publish.topic_template,
+                                       config.publish.status_topic_template, config.publish.max_queued_messages)
+        publisher.start()
     workers = config.refit.workers if refit_workers is None else refit_workers
     return Service(engine=engine, store=store, sources=sources, publisher=publisher, refit_workers=workers,
                    clock="readings" if replay else _wall_clock)
@@ -162,27 +164,5 @@ def run_service(service: Service) -> int:
         for sig, handler in previous.items():
             signal.signal(sig, handler)
         if service.publisher is not None:
-            service.publisher.publisher.close()
+            service.publisher.close()
         service.store.close()
-
-
-def add_parser(subparsers) -> None:
-    p = subparsers.add_parser("run", help="run the service: follow the sources, score, store the events",
-                              description="Run the service from a config file until SIGTERM or SIGINT. " + CAUTION)
-    p.add_argument("--config", required=True, help="the TOML config file")
-    p.add_argument("--from-start", action="store_true",
-                   help="read CSV files without a committed offset from their first byte (backfill history)")
-    p.add_argument("--replay", action="store_true",
-                   help="run on reading time, not the wall clock: for a replay of history")
-    p.set_defaults(handler=_handle)
-
-
-def _handle(args) -> int:
-    configure_logging()
-    config = load_config(args.config)
-    for warning in config.warnings:
-        logger.warning(log_fields("config", warning=warning))
-    service = build_service(config, from_start=args.from_start, replay=args.replay)
-    logger.info(log_fields("leadline run", config=str(config.path), store=config.store.safe_url,
-                           sources=len(config.sources), caution=CAUTION))
-    return run_service(service)

@@ -16,13 +16,13 @@ from leadline.detector.durations import parse_duration_s
 from leadline.detector.errors import DataError, SpecError, StoreError
 
 from . import review
-from .config_values import did_you_mean
+from ..config.values import did_you_mean
 from .review import add_store_options, open_review, show_time
-from .store.eventstore import EventStore
-from .store.records import StoredEvent
+from ..store.reads import EventQueries
+from ..store.records import StoredEvent
 
 
-def _events(store: EventStore, ids: list[int], command: str) -> list[StoredEvent]:
+def _events(store: EventQueries, ids: list[int], command: str) -> list[StoredEvent]:
     """The events with these ids (each once); an error naming every unknown one."""
     unique = list(dict.fromkeys(ids))
     found = {i: store.event(i) for i in unique}

@@ -45,9 +45,16 @@ import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from datetime import datetime, timezone
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from leadline.detector.errors import LeadlineError, StoreError
+from leadline.detector.events import AlarmEvent
+from leadline.detector.readings import Reading
+
+from ..ports import AlarmPublisher, EventSink, Source
+
+if TYPE_CHECKING:
+    from leadline.detector.engine import Engine
 
 logger = logging.getLogger("leadline.service")
 
@@ -73,10 +80,11 @@ class Service:
     Parameters
     ----------
     engine : leadline.detector.engine.Engine
-    store : EventStore
+    store : EventSink
+        The store's write side (:class:`~leadline.adapters.ports.EventSink`).
     sources : sequence of Source
-    publisher : object with ``publish(events)``, optional
-        Called with the events of each commit, after the commit returned.
+    publisher : AlarmPublisher, optional
+        Told of each event of a commit, after the commit returned.
     refit : callable, optional
         ``refit(request) -> (FittedModel, thresholds)``; default the engine's
         ``run_refit_with_thresholds``, so the limits are computed in the worker.
@@ -92,7 +100,8 @@ class Service:
         replay of history or the demo.
     """
 
-    def __init__(self, *, engine: Any, store: Any, sources: Sequence[Any], publisher: Any = None,
+    def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
+                 publisher: AlarmPublisher | None = None,
                  refit: Callable[[Any], Any] | None = None, refit_workers: int = 1,
                  checkpoint_interval_s: float = 30.0, tick_interval_s: float = 1.0,
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
@@ -119,8 +128,8 @@ class Service:
         self._stop = threading.Event()
         self._pool: ProcessPoolExecutor | None = None
         self._fits: dict[Future, Any] = {}
-        self._pending_acks: list[tuple[Any, list]] = []
-        self._to_publish: list[Any] = []
+        self._pending_acks: list[tuple[Source, list[Reading]]] = []
+        self._to_publish: list[AlarmEvent] = []
         self._last_commit = time.monotonic()
         self._last_checkpoint = time.monotonic()
         self._last_tick = 0.0
@@ -205,7 +214,7 @@ class Service:
                                        detail=sample.detail))
         return busy
 
-    def _process(self, source: Any, readings: list) -> None:
+    def _process(self, source: Source, readings: list[Reading]) -> None:
         for reading in readings:
             self._handle(self.engine.process(reading))
             if self._latest_reading is None or reading.timestamp > self._latest_reading:
@@ -308,7 +317,8 @@ class Service:
         events, self._to_publish = self._to_publish, []
         if self.publisher is not None and events:
             try:
-                self.publisher.publish(events)
+                for event in events:
+                    self.publisher.publish(event)
             except LeadlineError as exc:
                 logger.warning(log_fields("alarm publishing failed", error=str(exc), events=len(events)))
 

@@ -1,6 +1,6 @@
 """Reading one config table: typed values, unknown keys, messages that name the key.
 
-The config loader (:mod:`.config`) walks the TOML document with a
+The config loader (:mod:`.file`) walks the TOML document with a
 :class:`TableReader` per table. Each value is converted by a *checker*, a
 function that returns the converted value or raises :class:`Bad` with what is
 allowed. The reader turns that into one problem line::

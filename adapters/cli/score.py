@@ -21,9 +21,9 @@ from leadline.detector.rules.monitor import FeedMonitor, MonitorConfig
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod, zone_info
 from leadline.detector.spec import ModelSpec
 
-from .event_formats import write_alarm_events_json
-from .series_csv import read_series_csv
-from .sources.timeparse import epoch_seconds_to_utc
+from ..sources.series_csv import read_series_csv
+from ..sources.timeparse import epoch_seconds_to_utc
+from .formats import write_alarm_events_json
 
 COLUMNS = ("timestamp", "value", "forecast", "error", "variance", "z", "lower", "upper")
 
@@ -190,7 +190,7 @@ def add_parser(subparsers) -> None:
 
 def _handle(args) -> int:
     if args.input is None:
-        from .examples import example_path
+        from ..examples import example_path
 
         args.input = str(example_path("booster-pressure.csv"))
     if not 0 < args.level < 1:

@@ -26,7 +26,7 @@ from typing import Any, TextIO
 from leadline.detector.events import CAUTION
 
 from . import review
-from .event_formats import write_aligned
+from .formats import write_aligned
 from .review import Review, add_store_options, iso, open_review, print_caution, show_age, show_time
 
 FEED_COLUMNS = ("FEED", "SOURCE", "STATE", "LAST READING", "MODEL", "FITTED", "ACTIVE ALARMS", "SHELVED UNTIL")

@@ -11,7 +11,7 @@ the advisory caution (:data:`~leadline.detector.events.CAUTION`).
 
 The retained statuses are published again after every reconnect. Messages
 wait in paho's bounded queue while the broker is away; when that queue is
-full, :meth:`AlarmPublisher.publish` raises
+full, :meth:`MqttAlarmPublisher.publish` raises
 :class:`~leadline.detector.errors.SourceError` instead of dropping silently.
 
 Payload of an event::
@@ -90,8 +90,10 @@ def event_payload(event: AlarmEvent) -> dict[str, Any]:
     }
 
 
-class AlarmPublisher:
+class MqttAlarmPublisher:
     """Publishes events (QoS 1, not retained) and retained per-feed statuses.
+
+    The MQTT :class:`~leadline.adapters.ports.AlarmPublisher`.
 
     Parameters
     ----------
@@ -180,6 +182,7 @@ class AlarmPublisher:
         return True
 
     def close(self) -> None:
+        """Disconnect and stop the network thread; safe to call twice."""
         client = self._client
         if client is not None:
             client.disconnect()

@@ -14,7 +14,7 @@ Every format ends with the caution (:data:`~leadline.detector.events.CAUTION`):
   ``filters`` and without the store's fields.
 
 An event's fields in CSV and JSON carry the names of the alarm payload
-published over MQTT (:func:`leadline.adapters.sources.alarm_publisher.event_payload`),
+published over MQTT (:func:`leadline.adapters.sinks.alarm_publisher.event_payload`),
 plus ``id``, ``acknowledged``, ``notes``, ``created_at`` and ``updated_at``.
 Times are UTC ISO 8601; NaN is an empty CSV cell and JSON ``null``.
 """
@@ -30,7 +30,7 @@ from typing import Any, Iterable, Mapping, Sequence, TextIO
 from leadline.detector.events import CAUTION, AlarmEvent
 
 from .review import iso, print_caution, show_time
-from .store.records import Note, StoredEvent
+from ..store.records import Note, StoredEvent
 
 CSV_COLUMNS = (
     "id", "feed_id", "rule", "severity", "state", "start", "end", "peak_abs_z", "value_at_onset",

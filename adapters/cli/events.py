@@ -10,8 +10,8 @@ from leadline.detector.events import SEVERITIES
 from leadline.detector.rules.registry import event_rule_names
 
 from . import review
-from .config_values import did_you_mean
-from .event_formats import write_csv, write_json, write_table
+from ..config.values import did_you_mean
+from .formats import write_csv, write_json, write_table
 from .review import Review, Window, add_store_options, add_window_options, iso, open_review, resolve_window
 
 #: The rule names the engine emits (AlarmEvent.rule: the rule registry and the engine's own kinds), for hints.

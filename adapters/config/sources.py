@@ -1,6 +1,6 @@
 """Config sources: ``[[sources.csv]]`` and ``[[sources.mqtt]]`` entries, read and checked.
 
-The schema of each entry is in :mod:`leadline.adapters.config`. Each entry
+The schema of each entry is in :mod:`leadline.adapters.config.file`. Each entry
 becomes a frozen dataclass that builds the adapter objects the service
 needs (:meth:`CsvSourceConfig.layout`, :meth:`MqttSourceConfig.settings`,
 :meth:`MqttSourceConfig.subscriptions`); building them is also the last
@@ -19,7 +19,7 @@ from typing import Any, Mapping
 
 from leadline.detector.errors import ConfigError
 
-from .config_values import (
+from .values import (
     Bad,
     Problems,
     TableReader,
@@ -68,7 +68,7 @@ class CsvSourceConfig:
 
     def layout(self):
         """The :class:`~leadline.adapters.sources.csv_rows.CsvLayout` of these files."""
-        from .sources.csv_rows import CsvLayout
+        from ..sources.csv_rows import CsvLayout
 
         return CsvLayout(
             layout=self.format, delimiter=self.delimiter, decimal=self.decimal, has_header=self.header,
@@ -94,10 +94,10 @@ class TopicConfig:
 
     def subscription(self):
         """The :class:`~leadline.adapters.sources.mqtt_subscriber.Subscription` for this entry."""
-        from .sources.mqtt_subscriber import Subscription
-        from .sources.payloads import JsonPayload, NumberPayload
-        from .sources.senml import SenmlPayload
-        from .sources.topics import TopicPattern
+        from ..sources.mqtt_subscriber import Subscription
+        from ..sources.payloads import JsonPayload, NumberPayload
+        from ..sources.senml import SenmlPayload
+        from ..sources.topics import TopicPattern
 
         if self.payload == "json":
             parser: Any = JsonPayload(self.value_path, self.time_path, self.time_format, self.timezone)
@@ -131,7 +131,7 @@ class MqttSourceConfig:
 
     def settings(self, client_id: str | None = None):
         """The :class:`~leadline.adapters.sources.mqtt_connection.MqttSettings` (another client id if given)."""
-        from .sources.mqtt_connection import MqttSettings
+        from ..sources.mqtt_connection import MqttSettings
 
         return MqttSettings(
             client_id=client_id or self.client_id, host=self.host, port=self.port, protocol=self.protocol,

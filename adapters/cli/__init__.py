@@ -1,13 +1,31 @@
-"""The ``leadline`` command line. Each subcommand lives in its own module."""
+"""The ``leadline`` command line. Each subcommand lives in its own module.
+
+The subcommand modules (``score``, ``run``, ``demo``, ``check_config``,
+``events``, ``export``, ``notes``, ``status``, with ``review`` and
+``formats`` shared by the review commands) are internal: what they offer is
+the command line. Run it as ``leadline``, ``python -m leadline`` or
+``python -m leadline.adapters.cli``.
+"""
 
 from __future__ import annotations
 
 import argparse
 import sys
+from importlib.metadata import PackageNotFoundError, version
 
 from leadline.detector.errors import LeadlineError
 
-from . import check_config, demo, review_events, review_export, review_notes, review_status, run, score
+from . import check_config, demo, events, export, notes, run, score, status
+
+__all__ = ["build_parser", "installed_version", "main"]
+
+
+def installed_version() -> str:
+    """The version of the installed ``leadline`` distribution."""
+    try:
+        return version("leadline")
+    except PackageNotFoundError:
+        return "unknown (not installed)"
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -16,15 +34,16 @@ def build_parser() -> argparse.ArgumentParser:
         description="Advisory anomaly alarms for telemetry feeds. Alarms support, and never replace, "
                     "operator judgment; leadline is not a safety function.",
     )
+    parser.add_argument("--version", action="version", version=f"%(prog)s {installed_version()}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
     score.add_parser(subparsers)
     run.add_parser(subparsers)
     demo.add_parser(subparsers)
     check_config.add_parser(subparsers)
-    review_events.add_parser(subparsers)
-    review_notes.add_parser(subparsers)
-    review_status.add_parser(subparsers)
-    review_export.add_parser(subparsers)
+    events.add_parser(subparsers)
+    notes.add_parser(subparsers)
+    status.add_parser(subparsers)
+    export.add_parser(subparsers)
     return parser
 
 
@@ -42,6 +61,3 @@ def main(argv: list[str] | None = None) -> int:
     except BrokenPipeError:
         return 0
 
-
-if __name__ == "__main__":
-    sys.exit(main())

@@ -30,7 +30,7 @@ from leadline.detector.rules.thresholds import budget_thresholds, sigma_threshol
 from leadline.detector.seasonality import SeasonalPeriod, zone_info
 from leadline.detector.spec import ModelSpec
 
-from .config_values import (
+from .values import (
     Bad,
     Checker,
     Problems,

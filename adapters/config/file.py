@@ -151,7 +151,7 @@ Schema
 For the service
 ---------------
 :meth:`Config.feed_settings` gives one feed's options as plain data, keyed
-as :data:`.config_feeds.BUILTIN_DEFAULTS`: the TOML names, except
+as :data:`.feeds.BUILTIN_DEFAULTS`: the TOML names, except
 ``interval_s``, ``train_span_s`` and ``utc_offset_s`` (seconds; ``interval_s``
 None for ``"auto"``); ``model`` is ``"auto"`` or ``{"order": [p, d, q],
 "seasonal": [P, D, Q, s] or None, "trend": str or None}``; ``seasonality``
@@ -179,10 +179,10 @@ from zoneinfo import ZoneInfo
 
 from leadline.detector.errors import ConfigError, StoreError
 
-from . import config_feeds
-from .config_feeds import FeedOverride, cross_check, merge, read_options, read_override
-from .config_sources import CsvSourceConfig, MqttSourceConfig, TopicConfig, read_sources
-from .config_values import (
+from . import feeds as config_feeds
+from .feeds import FeedOverride, cross_check, merge, read_options, read_override
+from .sources import CsvSourceConfig, MqttSourceConfig, TopicConfig, read_sources
+from .values import (
     Bad,
     Problems,
     TableReader,
@@ -228,14 +228,14 @@ class StoreConfig:
     @property
     def safe_url(self) -> str:
         """The URL with any password hidden."""
-        from .store.connect import resolve_url, safe_url
+        from ..store.connect import resolve_url, safe_url
 
         return safe_url(resolve_url(self.url))
 
     @property
     def sqlite_path(self) -> Path | None:
         """The database file for SQLite, else None."""
-        from .store.connect import resolve_url
+        from ..store.connect import resolve_url
 
         parsed = resolve_url(self.url)
         return Path(parsed.database) if parsed.get_backend_name() == "sqlite" else None
@@ -362,7 +362,7 @@ class Config:
     def feed_settings(self, feed_id: str) -> dict[str, Any]:
         """The resolved options of one feed, as plain data (a fresh dict per call).
 
-        The keys are those of :data:`.config_feeds.BUILTIN_DEFAULTS` plus
+        The keys are those of :data:`.feeds.BUILTIN_DEFAULTS` plus
         ``overrides``: the key paths of the overrides that applied. ``limits``
         holds only the keys the feed's threshold mode uses: in sigma mode
         the arguments of :func:`~leadline.detector.rules.thresholds.sigma_thresholds`,
@@ -468,7 +468,7 @@ def _read_store(reader: TableReader | None, base: Path, problems: Problems) -> S
 
 
 def _store_url(url: str, base: Path, reader: TableReader, problems: Problems) -> str | None:
-    from .store.connect import resolve_url
+    from ..store.connect import resolve_url
 
     try:
         parsed = resolve_url(url)

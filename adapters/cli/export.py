@@ -9,7 +9,7 @@ from leadline.detector.errors import DataError
 
 from . import review
 from .review import add_store_options, add_window_options, open_review, resolve_window
-from .review_events import NO_FILTERS, fetch, write_listing
+from .events import NO_FILTERS, fetch, write_listing
 
 
 def run_export(args, out: TextIO | None = None) -> int:
