@@ -54,7 +54,7 @@ from typing import Callable, Mapping, NamedTuple, Sequence
 
 from leadline.adapters.sources.base import RejectSample, SourceOffset
 from leadline.adapters.sources.csv_rows import CsvLayout, RowParser
-from leadline.adapters.sources.rejects import RejectLog
+from leadline.adapters.sources.rejects import RejectDelta, RejectLog
 from leadline.detector.errors import RejectError, SourceError
 from leadline.detector.readings import Reading
 
@@ -490,6 +490,10 @@ class CsvFollower:
 
     def take_rejects(self) -> list[RejectSample]:
         return self._rejects.take()
+
+    def take_reject_counts(self) -> list[RejectDelta]:
+        """Exact reject counts per reason since the last call (the samples are capped)."""
+        return self._rejects.take_counts()
 
     def stop(self) -> None:
         self._stopped = True

@@ -68,7 +68,7 @@ from paho.mqtt.subscribeoptions import SubscribeOptions
 from leadline.adapters.sources.base import RejectSample, SourceOffset
 from leadline.adapters.sources.mqtt_connection import MqttSettings, build_client, connect_async
 from leadline.adapters.sources.payloads import PayloadParser
-from leadline.adapters.sources.rejects import RejectLog
+from leadline.adapters.sources.rejects import RejectDelta, RejectLog
 from leadline.adapters.sources.timeparse import epoch_seconds_to_utc
 from leadline.adapters.sources.topics import TopicPattern
 from leadline.detector.errors import ConfigError, RejectError, SourceError
@@ -301,6 +301,10 @@ class MqttSubscriber:
 
     def take_rejects(self) -> list[RejectSample]:
         return self._rejects.take()
+
+    def take_reject_counts(self) -> list[RejectDelta]:
+        """Exact reject counts per reason since the last call (the samples are capped)."""
+        return self._rejects.take_counts()
 
     def stop(self) -> None:
         """Stop taking messages; the connection stays for acks until :meth:`close`.
