@@ -8,6 +8,7 @@ import sys
 from leadline.detector.errors import LeadlineError
 
 from . import check_config, demo, review_events, review_export, review_notes, review_status, run, score
+from .exit_codes import EX_USAGE
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -30,7 +31,13 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    words = sys.argv[1:] if argv is None else argv
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        if exc.code == 2 and "run" in words[:1]:
+            return EX_USAGE  # `leadline run` exits per sysexits.h (adapters/exit_codes.py)
+        raise
     if not getattr(args, "handler", None):
         parser.print_help()
         return 2
