@@ -11,7 +11,6 @@ import threading
 from collections import Counter
 from datetime import datetime, timedelta, timezone
 
-
 from engine_helpers import settings
 from leadline.adapters.reject_summary import RejectSummary, stage_source_rejects
 from leadline.adapters.service import Service

@@ -6,7 +6,9 @@ publisher sending a new topic per message would grow memory without end.
 :class:`FeedGate` admits the first ``max_feeds`` distinct feed ids a source
 produces and rejects readings of any further new id with reason
 ``feed_limit`` (counted like every reject, never created). A feed id longer
-than ``max_feed_id_chars`` is rejected with ``feed_id_too_long``.
+than ``max_feed_id_chars`` is rejected with ``feed_id_too_long``, one
+holding a NUL character with ``bad_feed`` (PostgreSQL text cannot store it,
+so it would fail every flush).
 
 The set of admitted ids lives in memory and starts empty at each start of
 the service: after a restart the first ``max_feeds`` ids seen are admitted
@@ -58,6 +60,8 @@ class FeedGate:
         known = self._known
         if feed_id in known:
             return None
+        if "\x00" in feed_id:  # PostgreSQL text cannot hold NUL: such a feed would fail every flush
+            return RejectError("bad_feed", "feed id contains a NUL character", where)
         if len(feed_id) > self.max_feed_id_chars:
             return RejectError("feed_id_too_long", f"feed id of {len(feed_id)} characters "
                                f"({feed_id[:40]!r}...); expected at most {self.max_feed_id_chars}", where)
