@@ -195,7 +195,7 @@ class Service:
             source.start()
             logger.info(log_fields("source started", source=source.name, kind=type(source).__name__))
         if self.notifier is not None:
-            self.notifier.ready(f"running; {len(self.sources)} sources")
+            self.notifier.ready(f"running; sources: {len(self.sources)}")
         try:
             while not self._stop.is_set():
                 busy = self._poll_once(timeout_s=0.0)
