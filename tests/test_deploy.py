@@ -267,3 +267,15 @@ def test_mosquitto_loads_the_site_config_and_leadline_connects_with_tls_and_pass
         finally:
             refused.close()
         assert broker.running, broker.log_text()
+
+
+def test_unit_is_notify_type_and_does_not_restart_on_a_bad_config():
+    from leadline.adapters.cli.exit_codes import EX_CONFIG, EX_TEMPFAIL
+
+    service = read_unit()["Service"]
+    assert service["Type"] == "notify" and service["NotifyAccess"] == "main"
+    assert int(service["WatchdogSec"]) > 0
+    # sysexits.h: EX_CONFIG stops the restart loop; EX_TEMPFAIL is restarted by Restart=on-failure
+    assert service["RestartPreventExitStatus"].split() == [str(EX_CONFIG)]
+    assert str(EX_TEMPFAIL) not in service["RestartPreventExitStatus"].split()
+    assert service["UMask"] == "0077"

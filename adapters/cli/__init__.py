@@ -16,6 +16,7 @@ from importlib.metadata import PackageNotFoundError, version
 from leadline.detector.errors import LeadlineError
 
 from . import check_config, demo, events, export, notes, run, score, status
+from .exit_codes import EX_USAGE
 
 __all__ = ["build_parser", "installed_version", "main"]
 
@@ -49,7 +50,13 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    words = sys.argv[1:] if argv is None else argv
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        if exc.code == 2 and "run" in words[:1]:
+            return EX_USAGE  # `leadline run` exits per sysexits.h (adapters/exit_codes.py)
+        raise
     if not getattr(args, "handler", None):
         parser.print_help()
         return 2

@@ -13,7 +13,6 @@ wall clock (a replay), so the demo runs the same on any day.
 from __future__ import annotations
 
 import io
-import logging
 import os
 import shutil
 import sys
@@ -30,6 +29,7 @@ from . import demo_scenario as scenario_module
 from ..config.file import load_config
 from ..service.wiring import build_service, open_configured_store
 from .formats import write_table
+from ..service.log_setup import configure_logging
 
 MARKER = ".leadline-demo"
 LIVE_SECONDS = 12.0
@@ -255,7 +255,6 @@ def add_parser(subparsers) -> None:
 
 
 def _handle(args) -> int:
-    logging.basicConfig(level=logging.WARNING, stream=sys.stderr,
-                        format="%(asctime)s %(levelname)s %(name)s %(message)s")
+    configure_logging("warning", "text", sys.stderr)  # escaped messages (log_setup)
     result = run_demo(Path(args.dir).resolve(), live_seconds=args.live_seconds)
     return 0 if result["found"] >= result["wanted"] else 1

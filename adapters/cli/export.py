@@ -8,6 +8,7 @@ from typing import TextIO
 from leadline.detector.errors import DataError
 
 from . import review
+from ..sinks.file_modes import open_private_text
 from .review import add_store_options, add_window_options, open_review, resolve_window
 from .events import NO_FILTERS, fetch, write_listing
 
@@ -21,7 +22,7 @@ def run_export(args, out: TextIO | None = None) -> int:
         events = fetch(rv, window, NO_FILTERS)
         if args.out:
             try:
-                with open(args.out, "w", newline="", encoding="utf-8") as handle:
+                with open_private_text(args.out) as handle:  # a new file gets mode 0600
                     n = write_listing(events, args.format, handle, rv, window, NO_FILTERS)
             except OSError as exc:
                 raise DataError(f"--out {args.out}: cannot write: {exc.strerror}") from exc

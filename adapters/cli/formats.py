@@ -17,6 +17,12 @@ An event's fields in CSV and JSON carry the names of the alarm payload
 published over MQTT (:func:`leadline.adapters.sinks.alarm_publisher.event_payload`),
 plus ``id``, ``acknowledged``, ``notes``, ``created_at`` and ``updated_at``.
 Times are UTC ISO 8601; NaN is an empty CSV cell and JSON ``null``.
+
+Safe output: table cells and headings show control, escape and bidi
+characters escaped (:func:`~leadline.adapters.sinks.safe_text.safe_text`); CSV
+text cells that a spreadsheet would run as a formula get a leading ``'``
+(:func:`~leadline.adapters.sinks.safe_text.csv_text_cell`), numeric cells are
+written as numbers and left alone. The store is never altered.
 """
 
 from __future__ import annotations
@@ -30,6 +36,7 @@ from typing import Any, Iterable, Mapping, Sequence, TextIO
 from leadline.detector.events import CAUTION, AlarmEvent
 
 from .review import iso, print_caution, show_time
+from ..sinks.safe_text import csv_text_cell, safe_text
 from ..store.records import Note, StoredEvent
 
 CSV_COLUMNS = (
@@ -120,13 +127,14 @@ def write_csv(events: Iterable[StoredEvent], out: TextIO) -> int:
     for stored in events:
         r = event_record(stored)
         ack = _first_ack(stored)
+        t = csv_text_cell  # text cells only; the numeric ones stay numbers
         writer.writerow([
-            r["id"], r["feed_id"], r["rule"], r["severity"], r["state"], r["start"], r["end"] or "",
+            r["id"], t(r["feed_id"]), t(r["rule"]), r["severity"], r["state"], r["start"], r["end"] or "",
             _cell(r["peak_abs_z"]), _cell(r["value_at_onset"]), _cell(r["forecast_at_onset"]),
             _cell(r["lower_at_onset"]), _cell(r["upper_at_onset"]),
             "" if r["model_version"] is None else r["model_version"],
-            "yes" if r["acknowledged"] else "no", ack.operator if ack else "", iso(ack.at) if ack else "",
-            "\n".join(_note_line(n) for n in stored.notes), r["detail"],
+            "yes" if r["acknowledged"] else "no", t(ack.operator) if ack else "", iso(ack.at) if ack else "",
+            t("\n".join(_note_line(n) for n in stored.notes)), t(r["detail"]),
             json.dumps(r["parameters"], sort_keys=True), r["created_at"], r["updated_at"], r["caution"],
         ])
         n += 1
@@ -174,6 +182,7 @@ def table_rows(events: Sequence[StoredEvent], zone: tzinfo) -> list[list[str]]:
 def write_aligned(header: Sequence[str], rows: Sequence[Sequence[str]], out: TextIO,
                   right: set[str] | frozenset[str] = frozenset()) -> None:
     """Columns padded to their widest cell; the last column is not padded."""
+    rows = [[safe_text(cell) for cell in row] for row in rows]
     widths = [max([len(h), *(len(r[i]) for r in rows)]) for i, h in enumerate(header)]
     for line in [list(header), *rows]:
         cells = []
@@ -188,7 +197,7 @@ def write_aligned(header: Sequence[str], rows: Sequence[Sequence[str]], out: Tex
 
 
 def write_table(events: Sequence[StoredEvent], out: TextIO, zone: tzinfo, heading: str) -> int:
-    print(heading, file=out)
+    print(safe_text(heading), file=out)
     if not events:
         print("No events.", file=out)
     else:

@@ -18,6 +18,7 @@ from leadline.detector.errors import DataError, SpecError, StoreError
 from . import review
 from ..config.values import did_you_mean
 from .review import add_store_options, open_review, show_time
+from ..sinks.safe_text import safe_text
 from ..store.reads import EventQueries
 from ..store.records import StoredEvent
 
@@ -49,7 +50,8 @@ def run_ack(args, out: TextIO | None = None) -> int:
             note_id = rv.store.add_note(stored.id, "ack", args.by, args.note or "", at=now)
             again = f"; it was already acknowledged by {before.operator} at {show_time(before.at, rv.zone)}" \
                 if before else ""
-            print(f"Acknowledged {_describe(stored, rv.zone)} as {args.by} (note {note_id}){again}.", file=out)
+            print(safe_text(f"Acknowledged {_describe(stored, rv.zone)} as {args.by} (note {note_id}){again}."),
+                  file=out)
     return 0
 
 
@@ -58,7 +60,7 @@ def run_note(args, out: TextIO | None = None) -> int:
     with open_review(args) as rv:
         (stored,) = _events(rv.store, [args.event], "noted")
         note_id = rv.store.add_note(stored.id, "comment", args.by, args.note, at=review.utc_now())
-        print(f"Added note {note_id} to {_describe(stored, rv.zone)}.", file=out)
+        print(safe_text(f"Added note {note_id} to {_describe(stored, rv.zone)}."), file=out)
     return 0
 
 
@@ -82,9 +84,10 @@ def run_shelve(args, out: TextIO | None = None) -> int:
         until = now + timedelta(seconds=span_s)
         note_id = rv.store.shelve(args.feed, args.by, args.note, until, at=now)
         if args.end:
-            print(f"Ended the shelving of {args.feed} as {args.by} (note {note_id}).", file=out)
+            print(safe_text(f"Ended the shelving of {args.feed} as {args.by} (note {note_id})."), file=out)
         else:
-            print(f"Shelved {args.feed} until {show_time(until, rv.zone)} as {args.by} (note {note_id}).", file=out)
+            print(safe_text(f"Shelved {args.feed} until {show_time(until, rv.zone)} as {args.by} (note {note_id})."),
+                  file=out)
     return 0
 
 

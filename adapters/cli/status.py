@@ -28,6 +28,7 @@ from leadline.detector.events import CAUTION
 from . import review
 from .formats import write_aligned
 from .review import Review, add_store_options, iso, open_review, print_caution, show_age, show_time
+from ..sinks.safe_text import safe_text
 
 FEED_COLUMNS = ("FEED", "SOURCE", "STATE", "LAST READING", "MODEL", "FITTED", "ACTIVE ALARMS", "SHELVED UNTIL")
 REJECT_COLUMNS = ("SOURCE", "REASON", "COUNT", "FIRST SEEN", "LAST SEEN")
@@ -80,7 +81,7 @@ def _alarms_text(alarms: list[dict[str, Any]]) -> str:
 
 
 def write_table(data: dict[str, Any], rv: Review, now: datetime, out: TextIO) -> None:
-    print(f"Status as of {show_time(now, rv.zone)}; store {data['store']}", file=out)
+    print(safe_text(f"Status as of {show_time(now, rv.zone)}; store {data['store']}"), file=out)
     rows = []
     for f in data["feeds"]:
         model = f["model"]

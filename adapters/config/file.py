@@ -21,10 +21,14 @@ Schema
 ``[store]``
     ======================  ========  ==========================================================
     url                     text      SQLAlchemy URL, ``postgresql+psycopg://user@host/db``, or an
-                                      SQLite file path. Default: ``leadline.db`` beside the config.
-                                      Keep PostgreSQL passwords in ``~/.pgpass`` or ``PGPASSWORD``.
+                                      SQLite file path. Default: ``leadline.db`` in
+                                      ``$STATE_DIRECTORY`` when systemd sets it, else beside the
+                                      config. Keep PostgreSQL passwords in ``~/.pgpass`` or
+                                      ``PGPASSWORD``.
     flush_interval_s        number    commit staged events at least this often (default 1.0)
     flush_events            integer   ...or as soon as this many events are staged (default 500)
+    retry_base_s            number    a failed flush is retried after this long, doubling... (1.0)
+    retry_cap_s             number    ...up to this wait (default 60)
     ======================  ========  ==========================================================
 
 ``[[sources.csv]]`` (followed files; any number)
@@ -47,6 +51,8 @@ Schema
     timezone                text      IANA zone of times written without an offset
     from_start              bool      read files the store has no offset for from byte 0, not from
                                       their end (default false)
+    max_feeds               integer   distinct feeds this source may create (default 100000);
+                                      readings of further new feeds are rejects (``feed_limit``)
     ======================  ========  ==========================================================
 
 ``[[sources.mqtt]]`` (broker subscriptions; any number)
@@ -66,6 +72,8 @@ Schema
     receive_maximum         integer   MQTT 5: unacknowledged messages in flight (default 1000)
     queue_size              integer   readings waiting between the network thread and the service
                                       (default 10000)
+    max_topic_bytes         integer   longer topics are rejects (``topic_too_long``; default 256)
+    max_feeds               integer   distinct feeds this source may create (default 100000)
     topics                  array     required, one table per pattern, see below
     ======================  ========  ==========================================================
 
@@ -195,6 +203,7 @@ from .values import (
     text,
     zone_name,
 )
+from .state_dir import default_store_path
 
 DEFAULT_STORE_FILE = "leadline.db"
 _SHIFT_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_-]*\Z")
@@ -202,7 +211,7 @@ _SHIFT_TIMES = re.compile(r"\s*(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*\Z")
 RESERVED_SHIFT_NAMES = ("last", "current", "timezone")
 
 TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts")
-STORE_KEYS = ("url", "flush_interval_s", "flush_events")
+STORE_KEYS = ("url", "flush_interval_s", "flush_events", "retry_base_s", "retry_cap_s")
 REFIT_KEYS = ("every", "on_degraded", "window_points", "window_span", "workers")
 PUBLISH_KEYS = ("broker", "client_id", "topic_template", "status_topic_template", "max_queued_messages")
 EVENT_TOPIC_FIELDS = ("feed", "rule", "severity")
@@ -224,6 +233,8 @@ class StoreConfig:
     url: str = field(repr=False)
     flush_interval_s: float = 1.0
     flush_events: int = 500
+    retry_base_s: float = 1.0
+    retry_cap_s: float = 60.0
 
     @property
     def safe_url(self) -> str:
@@ -455,15 +466,23 @@ def _read(document: dict[str, Any], file: Path, problems: Problems) -> Config:
 
 # ---------------------------------------------------------------------------- [store]
 def _read_store(reader: TableReader | None, base: Path, problems: Problems) -> StoreConfig:
-    default_url = f"sqlite:///{base / DEFAULT_STORE_FILE}"
+    default_url = f"sqlite:///{default_store_path(base)}"
     if reader is None:
         return StoreConfig(default_url)
     url = reader.get("url", text(), default=None)
     resolved = default_url if url is None else _store_url(url, base, reader, problems)
+    retry_base_s = reader.get("retry_base_s", number(0, 3600, low_open=True), 1.0)
+    retry_cap_s = reader.get("retry_cap_s", number(0, 86400, low_open=True), 60.0)
+    if retry_cap_s < retry_base_s:
+        problems.bad_value(reader.key("retry_cap_s"), retry_cap_s,
+                           f"a number of seconds >= retry_base_s ({retry_base_s})")
+        retry_cap_s = retry_base_s
     return StoreConfig(
         url=resolved or default_url,
         flush_interval_s=reader.get("flush_interval_s", number(0, 3600, low_open=True), 1.0),
         flush_events=reader.get("flush_events", integer(1, 1_000_000), 500),
+        retry_base_s=retry_base_s,
+        retry_cap_s=retry_cap_s,
     )
 
 

@@ -39,9 +39,10 @@ TIME_FORMATS = ("iso8601", "epoch_s", "epoch_ms")
 PAYLOADS = ("number", "json", "senml")
 PROTOCOLS = ("5", "3.1.1")
 CSV_KEYS = ("name", "path", "format", "columns", "header", "column_names", "feed_prefix", "delimiter", "decimal",
-            "time_format", "timezone", "from_start")
+            "time_format", "timezone", "from_start", "max_feeds")
 MQTT_KEYS = ("name", "host", "port", "client_id", "protocol", "tls", "username", "password_env", "password_file",
-             "keepalive_s", "session_expiry_s", "receive_maximum", "queue_size", "topics")
+             "keepalive_s", "session_expiry_s", "receive_maximum", "queue_size", "topics", "max_topic_bytes",
+             "max_feeds")
 TOPIC_KEYS = ("pattern", "feed", "payload", "value_path", "time_path", "time_format", "timezone", "qos", "use_sum")
 TLS_KEYS = ("ca_file", "cert_file", "key_file")
 
@@ -65,6 +66,7 @@ class CsvSourceConfig:
     time_format: str = "iso8601"
     timezone: str | None = None
     from_start: bool = False
+    max_feeds: int = 100_000
 
     def layout(self):
         """The :class:`~leadline.adapters.sources.csv_rows.CsvLayout` of these files."""
@@ -128,6 +130,8 @@ class MqttSourceConfig:
     session_expiry_s: int = 86400
     receive_maximum: int = 1000
     queue_size: int = 10_000
+    max_topic_bytes: int = 256
+    max_feeds: int = 100_000
 
     def settings(self, client_id: str | None = None):
         """The :class:`~leadline.adapters.sources.mqtt_connection.MqttSettings` (another client id if given)."""
@@ -220,6 +224,7 @@ def _read_csv(reader: TableReader, base: Path, seen: dict[str, str]) -> CsvSourc
         time_format=reader.get("time_format", _time_format, "iso8601"),
         timezone=reader.get("timezone", zone_name, None),
         from_start=reader.get("from_start", boolean, False),
+        max_feeds=reader.get("max_feeds", integer(1, 100_000_000), 100_000),
     )
     if name is None or path is None:
         return None
@@ -314,6 +319,8 @@ def _read_mqtt(reader: TableReader, base: Path, seen: dict[str, str]) -> MqttSou
         session_expiry_s=reader.get("session_expiry_s", integer(0, 2**32 - 1), 86400),
         receive_maximum=reader.get("receive_maximum", integer(1, 65535), 1000),
         queue_size=reader.get("queue_size", integer(1, 10_000_000), 10_000),
+        max_topic_bytes=reader.get("max_topic_bytes", integer(1, 65535), 256),
+        max_feeds=reader.get("max_feeds", integer(1, 100_000_000), 100_000),
         **files,
     )
     topic_readers = reader.tables("topics", TOPIC_KEYS)

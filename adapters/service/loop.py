@@ -18,9 +18,18 @@ One :class:`Service` owns the running parts and does, until it is asked to stop:
 6. save each feed's checkpoint (stream state and model version) on a timer,
    after each new model and at shutdown, so a restart resumes without a
    learning phase;
-7. log one line per event, connection change, refit and reject count, and
-   a summary line every ``summary_interval_s`` (readings/s, queue depth,
-   alarms active).
+7. log one line per event, connection change and refit, one line per
+   source and reject reason per minute (exact reject counts go to the
+   store, :mod:`.reject_summary`), and a summary line every
+   ``summary_interval_s`` (readings/s, queue depth, alarms active);
+8. when the store fails, retry the flush with exponential backoff
+   (``store_retry_base_s`` doubling up to ``store_retry_cap_s``, :mod:`.backoff`),
+   logging one line when it goes down and one when it is back; meanwhile
+   sources are no longer polled once ``max_pending_readings`` wait for the
+   commit;
+9. tell systemd (``Type=notify``, :mod:`.sd_notify`): READY=1 once the
+   sources are started, WATCHDOG=1 from the loop, the summary as STATUS=,
+   STOPPING=1 at shutdown.
 
 :meth:`Service.request_stop` (wired to SIGTERM and SIGINT by ``leadline run``)
 stops the sources, drains what they still hold, flushes events and
@@ -55,6 +64,9 @@ from ..ports import AlarmPublisher, EventSink, Source
 
 if TYPE_CHECKING:
     from leadline.detector.engine import Engine
+
+from .backoff import Backoff
+from .reject_summary import RejectSummary, stage_source_rejects
 
 logger = logging.getLogger("leadline.service")
 
@@ -98,6 +110,15 @@ class Service:
         Time for the engine's ticks (the stale rule): the wall clock by
         default; ``"readings"`` follows the newest reading's time, for a
         replay of history or the demo.
+    store_retry_base_s, store_retry_cap_s : float
+        Backoff of failed flushes: the first wait, and the longest.
+    max_pending_readings : int
+        While the store is down, stop polling once this many readings wait
+        for a commit (memory stays bounded; MQTT brokers keep the rest).
+    notifier : leadline.adapters.service.sd_notify.Notifier, optional
+        The link to systemd; None sends nothing.
+    reject_log_interval_s : float
+        At most one reject log line per source and reason this often.
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -105,7 +126,9 @@ class Service:
                  refit: Callable[[Any], Any] | None = None, refit_workers: int = 1,
                  checkpoint_interval_s: float = 30.0, tick_interval_s: float = 1.0,
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
-                 clock: Callable[[], datetime] | str = _utc_now) -> None:
+                 clock: Callable[[], datetime] | str = _utc_now, store_retry_base_s: float = 1.0,
+                 store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
+                 reject_log_interval_s: float = 60.0) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -138,6 +161,12 @@ class Service:
         self.readings_total = 0
         self.events_total = 0
         self.refits_total = 0
+        self.rejects_total = 0
+        self.store_backoff = Backoff(store_retry_base_s, store_retry_cap_s)
+        self.max_pending_readings = int(max_pending_readings)
+        self._pending_readings = 0
+        self.notifier = notifier
+        self.reject_summary = RejectSummary(reject_log_interval_s)
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -174,6 +203,8 @@ class Service:
         for source in self.sources:
             source.start()
             logger.info(log_fields("source started", source=source.name, kind=type(source).__name__))
+        if self.notifier is not None:
+            self.notifier.ready(f"running; sources: {len(self.sources)}")
         try:
             while not self._stop.is_set():
                 busy = self._poll_once(timeout_s=0.0)
@@ -187,7 +218,7 @@ class Service:
         except BaseException:
             # Keep what was already staged; nothing is acknowledged past it.
             try:
-                self._commit()
+                self._commit(force=True)
             except Exception:  # noqa: BLE001 - the original error is the one to report
                 logger.exception("final commit after a failure failed")
             raise
@@ -199,6 +230,9 @@ class Service:
     # ------------------------------------------------------------------ steps
     def _poll_once(self, timeout_s: float) -> bool:
         busy = False
+        if self.store_backoff.down and self._pending_readings >= self.max_pending_readings:
+            self._stop.wait(timeout_s)  # the store is down: hold the input until it is back
+            return False
         for source in self.sources:
             readings = source.poll(self.batch_size, timeout_s / max(1, len(self.sources)))
             if readings:
@@ -208,10 +242,7 @@ class Service:
                 # Rows that were only rejected still move a file's mark forward.
                 for mark in source.durable_marks(readings):
                     self.store.stage_offset(mark)
-            for sample in source.take_rejects():
-                self.store.stage_reject(sample)
-                logger.info(log_fields("reject", source=sample.source, reason=sample.reason, where=sample.where,
-                                       detail=sample.detail))
+            self.rejects_total += stage_source_rejects(self.store, source, self.reject_summary)
         return busy
 
     def _process(self, source: Source, readings: list[Reading]) -> None:
@@ -222,6 +253,7 @@ class Service:
         for mark in source.durable_marks(readings):
             self.store.stage_offset(mark)
         self._pending_acks.append((source, readings))
+        self._pending_readings += len(readings)
         self.readings_total += len(readings)
         self._readings_since_summary += len(readings)
 
@@ -296,21 +328,36 @@ class Service:
             self._commit()
         if now - self._last_summary >= self.summary_interval_s:
             self._summary(now)
+        self.reject_summary.tick()
+        if self.notifier is not None:
+            self.notifier.heartbeat()
 
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
             self.store.stage_checkpoint(feed_id, state, version)
         self._last_checkpoint = time.monotonic()
 
-    def _commit(self) -> None:
-        """Flush the store; then acknowledge the sources and publish, in that order."""
+    def _commit(self, force: bool = False) -> None:
+        """Flush the store; then acknowledge the sources and publish, in that order.
+
+        After a failure the next try waits for the backoff, unless ``force``.
+        """
+        backoff = self.store_backoff
+        if not (force or backoff.ready()):
+            return
         try:
             self.store.flush()
         except StoreError as exc:
-            # Everything stays staged; the next commit retries. Nothing is acked meanwhile.
-            logger.error(log_fields("store flush failed; will retry", error=str(exc)))
+            # Everything stays staged; a later commit retries. Nothing is acked meanwhile.
+            if backoff.failed():
+                logger.error(log_fields("store down; flushes retried with backoff", error=str(exc),
+                                        retry_cap_s=backoff.cap_s))
             return
+        outage_s = backoff.succeeded()
+        if outage_s is not None:
+            logger.warning(log_fields("store back", after_s=round(outage_s, 1)))
         self._last_commit = time.monotonic()
+        self._pending_readings = 0
         acks, self._pending_acks = self._pending_acks, []
         for source, readings in acks:
             source.ack(readings)
@@ -332,18 +379,30 @@ class Service:
             depth += pending() if callable(pending) else pending
         logger.info(log_fields("summary", readings_per_s=self._readings_since_summary / elapsed, feeds=len(status),
                                queue_depth=depth, alarms_active=active, refits_running=len(self._fits),
-                               readings_total=self.readings_total, events_total=self.events_total))
+                               readings_total=self.readings_total, events_total=self.events_total,
+                               rejects_total=self.rejects_total))
+        if self.notifier is not None:
+            self.notifier.status(f"{self._readings_since_summary / elapsed:.1f} readings/s; {len(status)} feeds; "
+                                 f"{active} alarms active; store {'down' if self.store_backoff.down else 'up'}")
         self._last_summary = now
         self._readings_since_summary = 0
 
     def _shutdown(self) -> None:
+        if self.notifier is not None:
+            self.notifier.stopping("draining the sources and flushing")
         for source in self.sources:
             source.stop()
         # Drain: whatever the sources still hold is processed and committed.
         while self._poll_once(timeout_s=0.0):
             pass
         self._stage_checkpoints()
-        self._commit()
+        self._commit(force=True)
+        if self.store_backoff.down:
+            logger.error(log_fields("store still down at shutdown; staged work not committed",
+                                    readings=self._pending_readings,
+                                    detail="MQTT messages stay unacknowledged and come again; CSV files resume "
+                                           "from the last committed offset"))
+        self.reject_summary.flush()
         for source in self.sources:
             close = getattr(source, "close", None)
             if close is not None:

@@ -11,7 +11,9 @@ one :class:`~leadline.adapters.sources.mqtt_subscriber.MqttSubscriber` per
 so a restart resumes without a learning phase), the store, the publisher,
 and the :class:`~.loop.Service` loop. SIGTERM and SIGINT stop it cleanly
 (:func:`run_service`): sources stopped, queue drained, events and
-checkpoints flushed, exit 0. ``leadline run`` is :mod:`leadline.adapters.cli.run`.
+checkpoints flushed, exit 0. ``leadline run`` is :mod:`leadline.adapters.cli.run`;
+its other exit statuses follow ``sysexits.h`` (:mod:`leadline.adapters.cli.exit_codes`).
+Files are created with mode 0600 (:mod:`leadline.adapters.sinks.file_modes`).
 """
 
 from __future__ import annotations
@@ -29,6 +31,7 @@ from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.spec import ModelSpec
 
 from ..config.file import Config
+from ..sinks.file_modes import create_private_file
 from ..ports import Source
 from .loop import Service, log_fields
 
@@ -102,6 +105,9 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
     from ..sources.mqtt_subscriber import MqttSubscriber
 
     if store is None:
+        sqlite_path = config.store.sqlite_path
+        if sqlite_path is not None and sqlite_path.parent.is_dir():
+            create_private_file(sqlite_path)  # mode 0600; SQLite gives -wal and -shm the same mode
         store = open_configured_store(config)
     cache: dict[str, FeedSettings] = {}
 
@@ -123,10 +129,12 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
     for csv_source in config.csv_sources:
         sources.append(CsvFollower(csv_source.name, csv_source.path, csv_source.layout(),
                                    start_offsets=store.load_offsets(csv_source.name),
-                                   from_start=from_start or csv_source.from_start))
+                                   from_start=from_start or csv_source.from_start,
+                                   max_feeds=csv_source.max_feeds))
     for mqtt_source in config.mqtt_sources:
         sources.append(MqttSubscriber(mqtt_source.name, mqtt_source.settings(), mqtt_source.subscriptions(),
-                                      queue_max_messages=mqtt_source.queue_size))
+                                      queue_max_messages=mqtt_source.queue_size,
+                                      max_topic_bytes=mqtt_source.max_topic_bytes, max_feeds=mqtt_source.max_feeds))
     publisher = None
     if config.publish is not None:
         from ..sinks.alarm_publisher import MqttAlarmPublisher
@@ -136,18 +144,14 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
         publisher.start()
     workers = config.refit.workers if refit_workers is None else refit_workers
     return Service(engine=engine, store=store, sources=sources, publisher=publisher, refit_workers=workers,
-                   clock="readings" if replay else _wall_clock)
+                   clock="readings" if replay else _wall_clock, store_retry_base_s=config.store.retry_base_s,
+                   store_retry_cap_s=config.store.retry_cap_s)
 
 
 def _wall_clock():
     from datetime import datetime, timezone
 
     return datetime.now(timezone.utc)
-
-
-def configure_logging() -> None:
-    logging.basicConfig(level=logging.INFO, stream=sys.stderr,
-                        format="%(asctime)s %(levelname)s %(name)s %(message)s")
 
 
 def run_service(service: Service) -> int:

@@ -40,6 +40,8 @@ Rules
 * Bad rows never stop the follower: they are counted by reason and sampled
   (:meth:`CsvFollower.take_rejects`). A file whose header lacks the
   configured columns is rejected once (``bad_header``) and not read.
+* Readings of a new feed beyond ``max_feeds`` are rejected (``feed_limit``,
+  :mod:`.feed_gate`); their lines count as reading-free for the marks.
 """
 
 from __future__ import annotations
@@ -54,7 +56,8 @@ from typing import Callable, Mapping, NamedTuple, Sequence
 
 from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.adapters.sources.csv_rows import CsvLayout, RowParser
-from leadline.adapters.sources.rejects import RejectLog
+from leadline.adapters.sources.feed_gate import DEFAULT_MAX_FEEDS, FeedGate
+from leadline.adapters.sources.rejects import RejectDelta, RejectLog
 from leadline.detector.errors import RejectError, SourceError
 from leadline.detector.readings import Reading
 
@@ -258,6 +261,8 @@ class _Tail:
         parse_into = None if parser is None or self.failed else parser.parse_into
         cell_rejects = parser.cell_rejects if parser is not None else []
         reject = self.follower._reject
+        screen = self.follower._feeds.screen_tail
+        read_path = self.read_path
         ident = self.ident
         gap = self.gap
         issued_end = self.issued_end
@@ -285,6 +290,8 @@ class _Tail:
                     reject(exc)
                 cell_rejects.clear()
             new_count = len(out)
+            if new_count > count:
+                new_count = screen(out, count, read_path, number)
             if new_count > count:
                 issued_end = end
                 unmarked = True
@@ -324,6 +331,8 @@ class _Tail:
             for exc in self.parser.cell_rejects:
                 self.follower._reject(exc)
             self.parser.cell_rejects.clear()
+            if len(out) > before:
+                self.follower._feeds.screen_tail(out, before, self.read_path, self.line_number)
         self.follower._lines += 1
         if len(out) > before:
             self.issued_end = end
@@ -374,6 +383,9 @@ class CsvFollower:
         Sleep between empty looks while :meth:`poll` waits.
     max_line_bytes : int
         Longer lines are rejected (``line_too_long``).
+    max_feeds : int
+        Distinct feeds this source may create; readings of further new
+        feeds are rejected (``feed_limit``).
     """
 
     def __init__(
@@ -390,6 +402,7 @@ class CsvFollower:
         max_line_bytes: int = 1 << 20,
         clock: Callable[[], float] = time.monotonic,
         reject_log: RejectLog | None = None,
+        max_feeds: int = DEFAULT_MAX_FEEDS,
     ):
         self.name = name
         self.pattern = pattern
@@ -408,6 +421,7 @@ class CsvFollower:
         self.max_line_bytes = max_line_bytes
         self._clock = clock
         self._rejects = reject_log or RejectLog(name)
+        self._feeds = FeedGate(name, self._rejects.add, max_feeds)
         self._tails: dict[str, _Tail] = {}  # the live tail of each path
         self._by_ident: dict[FileIdentity, _Tail] = {}
         self._started = False
@@ -490,6 +504,10 @@ class CsvFollower:
 
     def take_rejects(self) -> list[RejectSample]:
         return self._rejects.take()
+
+    def take_reject_counts(self) -> list[RejectDelta]:
+        """Exact reject counts per reason since the last call (the samples are capped)."""
+        return self._rejects.take_counts()
 
     def stop(self) -> None:
         self._stopped = True

@@ -50,6 +50,13 @@ a payload its parser rejects is counted by reason and sampled (where = the
 topic), and acknowledged at once: it can never become a reading, and an
 unacknowledged message would hold one of the broker's in-flight slots for
 ever.
+
+Bounds under hostile input
+--------------------------
+A topic longer than ``max_topic_bytes`` is rejected (``topic_too_long``)
+before it is decoded or routed; readings of a new feed beyond
+``max_feeds`` are rejected (``feed_limit``, :mod:`.feed_gate`); the route
+cache is bounded in bytes (:mod:`.route_cache`).
 """
 
 from __future__ import annotations
@@ -67,9 +74,12 @@ import paho.mqtt.client as mqtt
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from leadline.adapters.ports import RejectSample, SourceOffset
+from leadline.adapters.sources.feed_gate import DEFAULT_MAX_FEEDS, FeedGate
 from leadline.adapters.sources.mqtt_connection import MqttSettings, build_client, connect_async
 from leadline.adapters.sources.payloads import PayloadParser
-from leadline.adapters.sources.rejects import RejectLog
+from leadline.adapters.sources.rejects import RejectDelta, RejectLog
+from leadline.adapters.sources.route_cache import DEFAULT_MAX_BYTES as DEFAULT_ROUTE_CACHE_BYTES
+from leadline.adapters.sources.route_cache import RouteCache
 from leadline.adapters.sources.timeparse import epoch_seconds_to_utc
 from leadline.adapters.sources.topics import TopicPattern
 from leadline.detector.errors import ConfigError, RejectError, SourceError
@@ -77,7 +87,8 @@ from leadline.detector.readings import Reading
 
 logger = logging.getLogger("leadline.sources.mqtt")
 
-_ROUTE_CACHE_LIMIT = 50_000
+#: Default bound of a topic's length in bytes; longer topics are rejected (topic_too_long).
+DEFAULT_MAX_TOPIC_BYTES = 256
 
 
 @dataclass(frozen=True)
@@ -204,6 +215,13 @@ class MqttSubscriber:
     batch_linger_s : float
         Once a message is waiting, :meth:`poll` waits this much longer for a
         fuller batch (throughput over a few ms of latency).
+    max_topic_bytes : int
+        Longer topics are rejected (``topic_too_long``).
+    max_feeds : int
+        Distinct feeds this source may create; readings of further new
+        feeds are rejected (``feed_limit``).
+    route_cache_bytes : int
+        Bound of the topic route cache.
     """
 
     def __init__(
@@ -217,6 +235,9 @@ class MqttSubscriber:
         resume_after: Mapping[str, datetime] | None = None,
         batch_linger_s: float = 0.02,
         reject_log: RejectLog | None = None,
+        max_topic_bytes: int = DEFAULT_MAX_TOPIC_BYTES,
+        max_feeds: int = DEFAULT_MAX_FEEDS,
+        route_cache_bytes: int = DEFAULT_ROUTE_CACHE_BYTES,
     ):
         if not subscriptions:
             raise ConfigError(f"{name}: an MQTT source needs at least one subscription")
@@ -230,12 +251,16 @@ class MqttSubscriber:
         self._resume_after = dict(resume_after or {})
         self._queue = _BoundedQueue(queue_max_messages)
         self._rejects = reject_log or RejectLog(name)
+        if max_topic_bytes < 1:
+            raise ConfigError(f"{name}: max_topic_bytes must be at least 1")
+        self.max_topic_bytes = max_topic_bytes
+        self._feeds = FeedGate(name, self._rejects.add, max_feeds)
         self._client: mqtt.Client | None = None
         self._stopping = threading.Event()
         self._connected = threading.Event()  # connected and subscribed (SUBACK seen)
         self._subscribe_mid: int | None = None
         self._session = 0
-        self._route_cache: dict[str, tuple[Subscription, str] | None] = {}
+        self._route_cache = RouteCache(route_cache_bytes)
         self._lock = threading.Lock()
         self._seq = itertools.count(1)
         self._pending: dict[int, _Pending] = {}
@@ -302,6 +327,10 @@ class MqttSubscriber:
 
     def take_rejects(self) -> list[RejectSample]:
         return self._rejects.take()
+
+    def take_reject_counts(self) -> list[RejectDelta]:
+        """Exact reject counts per reason since the last call (the samples are capped)."""
+        return self._rejects.take_counts()
 
     def stop(self) -> None:
         """Stop taking messages; the connection stays for acks until :meth:`close`.
@@ -421,6 +450,13 @@ class MqttSubscriber:
             return  # left unacknowledged: delivered again at the next start
         now_s = time.time()
         self._counts["messages"] += 1
+        topic_bytes = getattr(message, "_topic", b"")
+        if len(topic_bytes) > self.max_topic_bytes:
+            where = repr(bytes(topic_bytes[:80])) + "..."
+            self._reject(client, message, RejectError(
+                "topic_too_long", f"topic of {len(topic_bytes)} bytes; expected at most {self.max_topic_bytes} "
+                "(max_topic_bytes)", where))
+            return
         try:
             topic = message.topic
         except UnicodeDecodeError:
@@ -465,6 +501,9 @@ class MqttSubscriber:
                 readings.append(Reading(feed_id, arrival, value.value, origin, True))
             else:
                 readings.append(Reading(feed_id, timestamp, value.value, origin))
+        if not self._feeds.screen_tail(readings, 0, topic):
+            self._ack_now(client, message)  # every reading was of a refused feed
+            return
         item = (message.mid, message.qos, session, seq, readings)
         while not self._queue.put(item, 0.5):
             if self._stopping.is_set():
@@ -474,11 +513,8 @@ class MqttSubscriber:
         for subscription in self.subscriptions:
             feed = subscription.pattern.feed_id(topic)
             if feed is not None:
-                result = (subscription, feed)
-                if len(self._route_cache) >= _ROUTE_CACHE_LIMIT:
-                    self._route_cache.clear()
-                self._route_cache[topic] = result
-                return result
+                self._route_cache.put(topic, subscription, feed)
+                return subscription, feed
         return None
 
     def _reject(self, client: mqtt.Client, message: mqtt.MQTTMessage, error: RejectError) -> None:

@@ -12,7 +12,10 @@ Rules shared by every parser
 * The payload must be UTF-8 (``bad_utf8``).
 * A value must be a finite number. ``NaN`` and ``Infinity`` are rejected
   (``not_finite``); JSON's non-standard ``NaN``/``Infinity`` literals are
-  rejected as ``not_json`` (RFC 8259 section 6 has no such numbers).
+  rejected as ``not_json`` (RFC 8259 section 6 has no such numbers), and so
+  is nesting deeper than Python's recursion limit. An integer beyond the
+  range of a double (``1`` followed by 400 zeros) is ``not_finite``; one of
+  more than 4300 digits is ``not_json`` (Python's integer-string limit).
 * A payload without a time gets ``timestamp=None``; the subscriber then uses
   the arrival time and flags the reading (``Reading.timestamp_from_arrival``).
 
@@ -250,10 +253,12 @@ class JsonPayload:
             item = lookup(document, self._value, payload)
         if item is None:
             value = math.nan
-        elif type(item) is float or type(item) is int:
-            value = float(item)
+        elif type(item) is float:
+            value = item
             if value - value != 0.0:
                 value = to_number(item, f"JSON path {_path_text(self._value)!r}", payload)
+        elif type(item) is int and -(2**53) <= item <= 2**53:
+            value = float(item)
         else:
             value = to_number(item, f"JSON path {_path_text(self._value)!r}", payload)
         timestamp = None

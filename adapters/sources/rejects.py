@@ -2,9 +2,17 @@
 
 A source hands each :class:`~leadline.detector.errors.RejectError` to a
 :class:`RejectLog`. The log counts it by reason code (for ever, see
-:meth:`RejectLog.counts`) and keeps a bounded number of samples per reason
-until the service takes them (:meth:`RejectLog.take`) for the rejects table.
+:meth:`RejectLog.counts`), counts it again as a *delta* until the service
+takes the deltas (:meth:`RejectLog.take_counts`, exact: every reject is in
+exactly one delta), and keeps a bounded number of samples per reason until
+the service takes them (:meth:`RejectLog.take`) for the rejects table. The
+store adds the deltas to its counts, separately from the capped samples, so
+the stored counts are exact however many rejects a poll brings.
 The raw record kept in a sample is cut to ``max_raw_bytes``.
+
+Logging: each reject is logged at DEBUG only, with its location cut to
+``max_where_chars``; the service logs one summary line per source and
+reason per minute (:mod:`leadline.adapters.service.reject_summary`).
 """
 
 from __future__ import annotations
@@ -12,12 +20,24 @@ from __future__ import annotations
 import logging
 import threading
 from collections import Counter
+from dataclasses import dataclass
 from datetime import datetime, timezone
 
 from leadline.adapters.ports import RejectSample
 from leadline.detector.errors import RejectError
 
 logger = logging.getLogger("leadline.sources.rejects")
+
+
+@dataclass(frozen=True, slots=True)
+class RejectDelta:
+    """Rejects of one reason since the last :meth:`RejectLog.take_counts`."""
+
+    source: str
+    reason: str
+    count: int
+    first_seen: datetime
+    last_seen: datetime
 
 
 class RejectLog:
@@ -31,9 +51,9 @@ class RejectLog:
         Samples kept per reason between two calls of :meth:`take`.
     max_raw_bytes : int
         Raw bytes kept per sample.
-    log_first : int
-        The first ``log_first`` rejects of each reason are logged at WARNING,
-        later ones only every ``log_every``-th.
+    max_where_chars : int
+        Characters of a reject's location (a topic, ``file:line``) kept in a
+        sample and in the DEBUG line.
     """
 
     def __init__(
@@ -41,16 +61,15 @@ class RejectLog:
         source: str,
         max_samples_per_reason: int = 20,
         max_raw_bytes: int = 512,
-        log_first: int = 5,
-        log_every: int = 1000,
+        max_where_chars: int = 256,
     ):
         self.source = source
         self.max_samples_per_reason = max_samples_per_reason
         self.max_raw_bytes = max_raw_bytes
-        self._log_first = log_first
-        self._log_every = log_every
+        self.max_where_chars = max_where_chars
         self._lock = threading.Lock()
         self._counts: Counter[str] = Counter()
+        self._deltas: dict[str, list] = {}  # reason -> [count, first_seen, last_seen]
         self._samples: list[RejectSample] = []
         self._sampled: Counter[str] = Counter()
 
@@ -61,23 +80,31 @@ class RejectLog:
             raw_bytes = b""
         elif not isinstance(raw_bytes, bytes):
             raw_bytes = bytes(raw_bytes)
+        reason = error.reason
+        where = error.where if len(error.where) <= self.max_where_chars else error.where[: self.max_where_chars] + "..."
         with self._lock:
-            self._counts[error.reason] += 1
-            n = self._counts[error.reason]
-            if self._sampled[error.reason] < self.max_samples_per_reason:
-                self._sampled[error.reason] += 1
+            now = datetime.now(timezone.utc)  # read under the lock, so first_seen <= last_seen across threads
+            self._counts[reason] += 1
+            delta = self._deltas.get(reason)
+            if delta is None:
+                self._deltas[reason] = [1, now, now]
+            else:
+                delta[0] += 1
+                delta[2] = max(delta[2], now)
+            if self._sampled[reason] < self.max_samples_per_reason:
+                self._sampled[reason] += 1
                 self._samples.append(
                     RejectSample(
                         source=self.source,
-                        reason=error.reason,
-                        where=error.where,
+                        reason=reason,
+                        where=where,
                         detail=error.detail,
                         raw=raw_bytes[: self.max_raw_bytes],
-                        seen_at=datetime.now(timezone.utc),
+                        seen_at=now,
                     )
                 )
-        if n <= self._log_first or n % self._log_every == 0:
-            logger.warning("%s: rejected (%s #%d): %s", self.source, error.reason, n, error)
+        if logger.isEnabledFor(logging.DEBUG):
+            logger.debug("%s: rejected (%s) at %s: %s", self.source, reason, where, error.detail[:200])
 
     def counts(self) -> dict[str, int]:
         """Rejects by reason since the source was created."""
@@ -94,3 +121,9 @@ class RejectLog:
             samples, self._samples = self._samples, []
             self._sampled.clear()
         return samples
+
+    def take_counts(self) -> list[RejectDelta]:
+        """Rejects per reason since the last call: every reject is in exactly one delta."""
+        with self._lock:
+            deltas, self._deltas = self._deltas, {}
+        return [RejectDelta(self.source, reason, n, first, last) for reason, (n, first, last) in deltas.items()]

@@ -60,6 +60,11 @@ def _is_number(value: Any) -> bool:
     return not isinstance(value, bool) and isinstance(value, (int, float))
 
 
+def _is_whole(value: int | float) -> bool:
+    """An int, or a finite float without a fraction (``1e400`` parses as infinity)."""
+    return isinstance(value, int) or (math.isfinite(value) and value == int(value))
+
+
 @dataclass(frozen=True)
 class SenmlPayload:
     """Parser of RFC 8428 JSON packs.
@@ -106,7 +111,7 @@ class SenmlPayload:
                     )
             if "bver" in record:
                 bver = record["bver"]
-                if not _is_number(bver) or bver != int(bver) or bver < 1:
+                if not _is_number(bver) or not _is_whole(bver) or bver < 1:
                     raise RejectError(
                         "bad_version", f"record {index}: bver {bver!r}; expected a positive integer", raw=raw
                     )

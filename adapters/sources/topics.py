@@ -180,5 +180,7 @@ class TopicPattern:
         if self.feed is not None:
             return self.feed.format(**captured)
         if not self.names:
+            if not topic:  # MQTT section 4.7.3: a topic has at least one character
+                raise RejectError("bad_topic", "empty topic; expected a topic naming the feed", topic)
             return topic
         return "/".join(captured[name] for name in self.names)

@@ -213,6 +213,24 @@ class EventWriter(StoreHandle):
         with self._lock:
             self._buffer.add_reject(sample)
 
+    def stage_reject_sample(self, sample: RejectSample) -> None:
+        """Keep a rejected record as a sample only; its count comes by :meth:`stage_reject_count`."""
+        self._check_open()
+        _require_utc("RejectSample.seen_at", sample.seen_at)
+        with self._lock:
+            self._buffer.add_reject_sample(sample)
+
+    def stage_reject_count(self, source: str, reason: str, count: int, first_seen: datetime,
+                           last_seen: datetime) -> None:
+        """Add ``count`` rejects of (source, reason) to the stored count at the next flush (exact)."""
+        self._check_open()
+        if not isinstance(count, int) or isinstance(count, bool) or count < 0:
+            raise StoreError(f"reject count of {source!r}/{reason!r} must be an int >= 0, got {count!r}")
+        first = _require_utc("first_seen", first_seen)
+        last = _require_utc("last_seen", last_seen)
+        with self._lock:
+            self._buffer.add_reject_count(source, reason, count, first, last)
+
     def flush(self) -> int:
         """Commit everything staged in ONE transaction; return the events written.
 

@@ -2,7 +2,8 @@
 
 :class:`WriteBuffer` holds what the service has staged since the last flush:
 events (merged per key), the latest checkpoint per feed, the latest offset
-per followed file, and reject counts with a bounded sample. :func:`write_buffer`
+per followed file, and reject counts (exact deltas, staged apart from the
+samples) with a bounded sample. :func:`write_buffer`
 writes a buffer inside a transaction the caller opened, so the events, the
 checkpoints and the CSV offsets that produced them commit together, or not
 at all.
@@ -107,14 +108,28 @@ class WriteBuffer:
         self.offsets[(off.source, off.path)] = off
 
     def add_reject(self, sample: RejectSample) -> None:
-        key = (sample.source, sample.reason)
-        tally = self.rejects.get(key)
-        if tally is None:
-            tally = self.rejects[key] = _RejectTally(0, sample.seen_at, sample.seen_at)
-        tally.count += 1
-        tally.first_seen = min(tally.first_seen, sample.seen_at)
-        tally.last_seen = max(tally.last_seen, sample.seen_at)
+        """One reject: counted once and kept as a sample."""
+        self.add_reject_sample(sample)
+        self.add_reject_count(sample.source, sample.reason, 1, sample.seen_at, sample.seen_at)
+
+    def add_reject_sample(self, sample: RejectSample) -> None:
+        """Keep ``sample`` (bounded per source and reason) without counting it."""
+        tally = self._tally(sample.source, sample.reason, sample.seen_at, sample.seen_at)
         tally.samples.append(sample)
+
+    def add_reject_count(self, source: str, reason: str, count: int, first_seen: datetime,
+                         last_seen: datetime) -> None:
+        """Add ``count`` rejects of (source, reason) seen between the two times."""
+        tally = self._tally(source, reason, first_seen, last_seen)
+        tally.count += int(count)
+
+    def _tally(self, source: str, reason: str, first_seen: datetime, last_seen: datetime) -> _RejectTally:
+        tally = self.rejects.get((source, reason))
+        if tally is None:
+            tally = self.rejects[(source, reason)] = _RejectTally(0, first_seen, last_seen)
+        tally.first_seen = min(tally.first_seen, first_seen)
+        tally.last_seen = max(tally.last_seen, last_seen)
+        return tally
 
 
 def event_row(ev: AlarmEvent, now: datetime) -> dict[str, Any]:
@@ -345,13 +360,13 @@ def _write_rejects(conn: Connection, insert: Callable[..., Any], buf: WriteBuffe
             "last_seen": case((new.last_seen > rc.c.last_seen, new.last_seen), else_=rc.c.last_seen),
         },
     )
-    conn.execute(
-        stmt,
-        [
-            {"source": s, "reason": r, "count": t.count, "first_seen": t.first_seen, "last_seen": t.last_seen}
-            for (s, r), t in buf.rejects.items()
-        ],
-    )
+    counted = [
+        {"source": s, "reason": r, "count": t.count, "first_seen": t.first_seen, "last_seen": t.last_seen}
+        for (s, r), t in buf.rejects.items()
+        if t.count > 0
+    ]
+    if counted:
+        conn.execute(stmt, counted)
     rs = schema.reject_samples
     rows = [
         {
@@ -365,8 +380,10 @@ def _write_rejects(conn: Connection, insert: Callable[..., Any], buf: WriteBuffe
         for t in buf.rejects.values()
         for x in t.samples
     ]
+    if not rows:
+        return
     conn.execute(rs.insert(), rows)
-    for source, reason in buf.rejects:
+    for source, reason in {(x["source"], x["reason"]) for x in rows}:
         keep = (
             select(rs.c.id)
             .where(rs.c.source == source, rs.c.reason == reason)
