@@ -29,8 +29,10 @@ from sqlalchemy import Engine, func, select
 from leadline.adapters.sources.base import RejectSample, SourceOffset
 from leadline.detector.errors import StoreError
 from leadline.detector.events import AlarmEvent
+from leadline.detector.evidence import EvidenceRecord
 
 from . import queries, schema
+from .evidence import read_evidence
 from .connect import create_store_engine, read_transaction, resolve_url, safe_url, translate_errors, write_transaction
 from .migrations import ensure_schema
 from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
@@ -270,6 +272,14 @@ class EventStore:
                     f"its parameters are not JSON-serialisable ({exc})"
                 ) from exc
 
+    def stage_evidence(self, record: EvidenceRecord) -> None:
+        """Stage the evidence of an episode (:mod:`.evidence`); it commits with the events."""
+        self._check_open()
+        if not isinstance(record, EvidenceRecord):
+            raise StoreError(f"stage_evidence expects an EvidenceRecord, got {type(record).__name__}")
+        with self._lock:
+            self._buffer.add_evidence(record)
+
     def stage_checkpoint(self, feed_id: str, state: bytes, model_version: int) -> None:
         """Stage a feed's stream state (the latest staged one per feed wins)."""
         self._check_open()
@@ -415,6 +425,10 @@ class EventStore:
     def reject_samples(self, source: str | None = None, reason: str | None = None) -> list[RejectSample]:
         """The kept samples of rejected input, oldest first."""
         return self._read("reading reject samples", queries.reject_samples, source, reason)
+
+    def evidence(self, keys: list[tuple[str, str, datetime]]) -> dict[tuple[str, str, datetime], EvidenceRecord]:
+        """The stored evidence of the given event keys ``(feed_id, rule, start)``; missing keys are absent."""
+        return self._read("reading evidence", read_evidence, list(keys))
 
     def feeds(self) -> list[Feed]:
         return self._read("listing feeds", queries.feeds)
