@@ -98,8 +98,11 @@ class Service:
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
                  clock: Callable[[], datetime] | str = _utc_now) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
+        from leadline.detector.evidence import EvidenceRecorder
 
         self.engine = engine
+        #: The readings and forecasts around each episode, staged with the events.
+        self.evidence = EvidenceRecorder()
         self.store = store
         self.sources = list(sources)
         self.publisher = publisher
@@ -207,7 +210,7 @@ class Service:
 
     def _process(self, source: Any, readings: list) -> None:
         for reading in readings:
-            self._handle(self.engine.process(reading))
+            self._handle(self.engine.process(reading), reading)
             if self._latest_reading is None or reading.timestamp > self._latest_reading:
                 self._latest_reading = reading.timestamp
         for mark in source.durable_marks(readings):
@@ -216,7 +219,9 @@ class Service:
         self.readings_total += len(readings)
         self._readings_since_summary += len(readings)
 
-    def _handle(self, out: Any) -> None:
+    def _handle(self, out: Any, reading: Any = None) -> None:
+        for record in self.evidence.observe(out, reading):
+            self.store.stage_evidence(record)
         for event in out.events:
             self.store.stage_event(event)
             self._to_publish.append(event)
@@ -291,6 +296,8 @@ class Service:
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
             self.store.stage_checkpoint(feed_id, state, version)
+        for record in self.evidence.partial():  # episodes still open, so a review sees them
+            self.store.stage_evidence(record)
         self._last_checkpoint = time.monotonic()
 
     def _commit(self) -> None:

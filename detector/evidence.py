@@ -96,6 +96,11 @@ def _epoch(t: datetime) -> float:
     return t.timestamp()
 
 
+def _emitted_s(event: AlarmEvent) -> float:
+    """When the engine emitted an event: its clearing time, else its onset."""
+    return _epoch(event.end if event.end is not None else event.start)
+
+
 class _Ring:
     """A fixed-size ring of slots (rows of :data:`FIELDS`) in one float64 array."""
 
@@ -180,10 +185,10 @@ class EvidenceRecorder:
 
     Notes
     -----
-    Feed each engine output with :meth:`observe`; the slots it carries are
-    taken first, then its events, so the onset slot (which is in the same
-    output as its event) falls in the episode, and the before-window holds
-    the slots strictly before the onset time.
+    Feed each engine output with :meth:`observe`. Its events are taken in
+    time order among its slots, each after the slots up to its time: so the
+    onset slot falls in the episode, and the before-window holds the slots
+    strictly before the onset time, even when one output replays many slots.
     """
 
     def __init__(self, before_slots: int = BEFORE_SLOTS, after_slots: int = AFTER_SLOTS,
@@ -219,6 +224,13 @@ class EvidenceRecorder:
             missing slot), the slot takes the reading's time and value.
         """
         finished: list[EvidenceRecord] = []
+        # An output can carry many slots (the readings buffered while a feed was
+        # being fitted are replayed at once) with the events among them: take the
+        # events in time order between the slots, each once the slots up to its
+        # time are in.
+        pending: dict[str, deque] = {}
+        for event in sorted(output.events, key=_emitted_s):
+            pending.setdefault(event.feed_id, deque()).append(event)
         for feed_id, inn in output.innovations:
             ts, value = inn.timestamp, inn.value
             if ts is None:
@@ -227,9 +239,14 @@ class EvidenceRecorder:
                 ts = reading.timestamp
                 if math.isnan(value):
                     value = float(reading.value)
-            finished.extend(self.slot(feed_id, _epoch(ts), value, inn.forecast, inn.lower, inn.upper))
-        for event in output.events:
-            finished.extend(self.event(event))
+            t = _epoch(ts)
+            waiting = pending.get(feed_id)
+            while waiting and _emitted_s(waiting[0]) < t:
+                finished.extend(self.event(waiting.popleft()))
+            finished.extend(self.slot(feed_id, t, value, inn.forecast, inn.lower, inn.upper))
+        for waiting in pending.values():
+            for event in waiting:
+                finished.extend(self.event(event))
         return finished
 
     def slot(self, feed_id: str, epoch_s: float, value: float, forecast: float, lower: float,

@@ -157,3 +157,20 @@ def test_bad_sizes_are_refused():
         EvidenceRecorder(after_slots=24, max_episode_slots=48)
     with pytest.raises(ValueError, match=">= 0"):
         EvidenceRecorder(before_slots=-1)
+
+
+def test_one_output_replaying_many_slots_places_its_events_among_them():
+    # the readings buffered while a feed was fitted come back in one output with their events
+    rec = EvidenceRecorder(before_slots=96, after_slots=24)
+    ev = onset(150)
+    other = "fenwick/booster/pressure"
+    innovations = [(FEED, inn(s)) for s in range(300)] + [(other, inn(s)) for s in range(300)]
+    out = EngineOutput(events=[ev.cleared(at(160)), ev, onset(20, feed=other)], innovations=innovations)
+    records = rec.observe(out)
+    mine = [r for r in records if r.feed_id == FEED]
+    (record,) = mine
+    slots = np.round((record.epoch_s - T0.timestamp()) / 900).astype(int)
+    assert list(slots) == list(range(54, 184))
+    assert rec.open_keys() == [(other, "cusum", at(20))]
+    (part,) = rec.partial()
+    assert part.epoch_s[0] == at(0).timestamp() and len(part) == 300
