@@ -7,7 +7,8 @@ import sys
 
 from leadline.detector.errors import LeadlineError
 
-from . import check_config, demo, review_events, review_export, review_notes, review_status, run, score
+from . import (check_config, demo, review_events, review_export, review_notes, review_report, review_status,
+               review_summary, run, score)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -25,6 +26,8 @@ def build_parser() -> argparse.ArgumentParser:
     review_notes.add_parser(subparsers)
     review_status.add_parser(subparsers)
     review_export.add_parser(subparsers)
+    review_summary.add_parser(subparsers)
+    review_report.add_parser(subparsers)
     return parser
 
 
