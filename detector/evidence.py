@@ -26,6 +26,7 @@ one-step forecast f_t and its forecast interval.
 from __future__ import annotations
 
 import math
+from array import array
 from collections import deque
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -102,26 +103,34 @@ def _emitted_s(event: AlarmEvent) -> float:
 
 
 class _Ring:
-    """A fixed-size ring of slots (rows of :data:`FIELDS`) in one float64 array."""
+    """A fixed-size ring of slots (rows of :data:`FIELDS`) in one flat float64 buffer.
 
-    __slots__ = ("data", "size", "head")
+    A plain ``array('d')`` with element stores: about 5x cheaper per slot than
+    assigning a row of a numpy array, and 40 bytes a slot.
+    """
+
+    __slots__ = ("data", "capacity", "size", "head")
 
     def __init__(self, capacity: int) -> None:
-        self.data = np.empty((capacity, len(FIELDS)))
+        self.data = array("d", bytes(8 * len(FIELDS) * capacity))
+        self.capacity = capacity
         self.size = 0
         self.head = 0  # next row to write
 
     def append(self, row: tuple[float, float, float, float, float]) -> None:
-        self.data[self.head] = row
-        self.head = (self.head + 1) % self.data.shape[0]
-        self.size = min(self.size + 1, self.data.shape[0])
+        i = self.head * 5
+        d = self.data
+        d[i], d[i + 1], d[i + 2], d[i + 3], d[i + 4] = row
+        self.head = (self.head + 1) % self.capacity
+        if self.size < self.capacity:
+            self.size += 1
 
     def rows(self) -> np.ndarray:
         """The kept slots, oldest first (a copy)."""
-        cap = self.data.shape[0]
-        if self.size < cap:
-            return self.data[: self.size].copy()
-        return np.concatenate([self.data[self.head :], self.data[: self.head]])
+        flat = np.frombuffer(self.data, dtype=float).reshape(self.capacity, len(FIELDS))
+        if self.size < self.capacity:
+            return flat[: self.size].copy()
+        return np.concatenate([flat[self.head :], flat[: self.head]])
 
 
 @dataclass
@@ -252,11 +261,11 @@ class EvidenceRecorder:
     def slot(self, feed_id: str, epoch_s: float, value: float, forecast: float, lower: float,
              upper: float) -> list[EvidenceRecord]:
         """One scored slot of one feed; returns the records it finished."""
-        row = (float(epoch_s), float(value), float(forecast), float(lower), float(upper))
+        row = (epoch_s, value, forecast, lower, upper)
         ring = self._rings.get(feed_id)
         if ring is None:
             ring = self._rings[feed_id] = _Ring(self.before_slots + RING_SLACK)
-        ring.append(row)
+        ring.append(row)  # array('d') takes numbers only: a TypeError here names a bad slot
         captures = self._captures.get(feed_id)
         if not captures:
             return []
@@ -309,7 +318,7 @@ class EvidenceRecorder:
     def held_slots(self, feed_id: str) -> int:
         """Slots held for one feed (ring and captures): the memory bound's measure."""
         ring = self._rings.get(feed_id)
-        n = 0 if ring is None else ring.data.shape[0]
+        n = 0 if ring is None else ring.capacity
         for cap in self._captures.get(feed_id, {}).values():
             n += cap.before.shape[0] + len(cap.head) + len(cap.tail)
         return n

@@ -42,14 +42,18 @@ def same(a, b) -> None:
         assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=True)
 
 
-def test_packing_is_20_bytes_a_slot_and_exact_for_float32():
+def test_packing_is_exact_and_compact():
     rec = make_record(150, True)
     base, data = pack(rec)
-    assert base == rec.epoch_s[0] and len(data) == 20 * 150
+    assert base == rec.epoch_s[0]
+    assert len(data) < 0.8 * 20 * 150  # 20 bytes a slot before the shuffle and zlib
     back = unpack(base, data, 150)
     assert np.array_equal(back[0], rec.epoch_s)
-    assert np.array_equal(back[1], rec.value, equal_nan=True)
-    with pytest.raises(StoreError, match="expected 3000"):
+    for got, want in zip(back[1:], (rec.value, rec.forecast, rec.lower, rec.upper)):
+        assert got.dtype == np.float32 and np.array_equal(got, want, equal_nan=True)
+    with pytest.raises(StoreError, match="expected 2980"):
+        unpack(base, data, 149)
+    with pytest.raises(StoreError, match="cannot be unpacked"):
         unpack(base, data[:-4], 150)
 
 

@@ -1,13 +1,15 @@
 """The ``evidence`` table: the slots around each alarm episode, packed compactly.
 
-One row per episode, keyed like its event (start, feed, rule). The slots are
-packed in ``data`` as five little-endian float32 arrays one after the other:
-the slot times as seconds after ``base_epoch_s`` (the first slot's time,
-kept as a float64 column, so the times stay exact to the second for runs of
-up to 194 days: float32 holds integers exactly up to 2**24), then the
-reading, the forecast and the lower and upper interval limits. That is 20
-bytes per slot; a typical episode (96 slots before, a short episode, 24
-after) is about 2.6 KB.
+One row per episode, keyed like its event (start, feed, rule). ``data`` holds
+five little-endian float32 arrays one after the other: the slot times as
+seconds after ``base_epoch_s`` (the first slot's time, kept as a float64
+column, so the times stay exact to the second for runs of up to 194 days:
+float32 holds integers exactly up to 2**24), then the reading, the forecast
+and the lower and upper interval limits. Those 20 bytes per slot are
+byte-shuffled (all first bytes of the floats, then all second bytes, ...)
+and compressed with zlib; the shuffle puts the slowly changing sign and
+exponent bytes side by side, which roughly halves a typical record (132
+slots: 2,640 bytes packed, about 1,300 stored).
 
 A record of an open episode (``complete = 0``) is replaced by later ones;
 a complete record is never replaced by an incomplete one (a replay after a
@@ -18,6 +20,8 @@ from __future__ import annotations
 
 from datetime import datetime
 from typing import Any, Callable, Iterable, Sequence
+
+import zlib
 
 import numpy as np
 from sqlalchemy import Connection, and_, or_, select, tuple_
@@ -35,17 +39,23 @@ def pack(record: EvidenceRecord) -> tuple[float, bytes]:
     """``(base_epoch_s, data)`` of a record (see the module docstring)."""
     n = len(record)
     base = float(record.epoch_s[0]) if n else 0.0
-    offsets = (record.epoch_s - base).astype(_LAYOUT)
-    parts = [offsets] + [np.asarray(a, dtype=_LAYOUT) for a in (record.value, record.forecast, record.lower,
-                                                                  record.upper)]
-    return base, b"".join(p.tobytes() for p in parts)
+    arrays = np.stack([record.epoch_s - base, record.value, record.forecast, record.lower, record.upper])
+    floats = np.ascontiguousarray(arrays, dtype=_LAYOUT).reshape(-1)
+    shuffled = floats.view(np.uint8).reshape(-1, 4).T.tobytes()
+    return base, zlib.compress(shuffled, 6)
 
 
 def unpack(base_epoch_s: float, data: bytes, slots: int) -> tuple[np.ndarray, ...]:
     """The five arrays of a packed record: epoch_s (float64), value, forecast, lower, upper."""
-    if len(data) != 5 * 4 * slots:
-        raise StoreError(f"evidence data holds {len(data)} bytes, expected {5 * 4 * slots} for {slots} slots")
-    arrays = np.frombuffer(bytes(data), dtype=_LAYOUT).reshape(5, slots)
+    try:
+        shuffled = zlib.decompress(bytes(data))
+    except zlib.error as exc:
+        raise StoreError(f"evidence data of {slots} slots cannot be unpacked: {exc}") from exc
+    if len(shuffled) != 5 * 4 * slots:
+        raise StoreError(f"evidence data holds {len(shuffled)} bytes unpacked, expected {5 * 4 * slots} "
+                         f"for {slots} slots")
+    raw = np.frombuffer(shuffled, dtype=np.uint8).reshape(4, -1).T.copy()
+    arrays = raw.view(_LAYOUT).reshape(5, slots)
     return (base_epoch_s + arrays[0].astype(float),) + tuple(arrays[i].astype(np.float32) for i in range(1, 5))
 
 
