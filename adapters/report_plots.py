@@ -27,7 +27,7 @@ EXTRA_HINT = ("leadline report needs matplotlib and Jinja2, which are not instal
 READING = "#1f2a36"
 FORECAST = "#4a6f94"
 BAND = "#c9d7e6"
-SPAN = "#f3d39b"
+SPAN = "#f6e1b8"
 ONSET = "#b4451f"
 BARS = "#4a6f94"
 FLOOD_LINE = "#b4451f"
@@ -105,7 +105,7 @@ def incident_svg(prefix: str, epoch_s: np.ndarray, value: np.ndarray, forecast: 
     last = max(float(epoch_s[-1]) if len(epoch_s) else onset_s, onset_s)
     for i, (a, b) in enumerate(spans):
         b = b if b is not None else last  # still active: shade to the last slot
-        ax.axvspan(*_date_numbers(np.array([a, max(b, a)])), color=SPAN, alpha=0.7, lw=0,
+        ax.axvspan(*_date_numbers(np.array([a, max(b, a)])), color=SPAN, lw=0,
                    label="alarm active" if i == 0 else None)
     ax.fill_between(x, lower, upper, color=BAND, lw=0, label="forecast interval")
     ax.plot(x, forecast, color=FORECAST, lw=1.2, ls="--", label="one-step forecast")

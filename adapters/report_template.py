@@ -60,7 +60,7 @@ PAGE = r"""<!DOCTYPE html>
 <p class="caution"><strong>Caution.</strong> {{ caution }}</p>
 
 <section id="figures">
-<h2>The shift in figures</h2>
+<h2>{{ figures_heading }}</h2>
 <p>{{ headline }}</p>
 <table class="reference">
   <thead><tr><th>Figure</th><th class="num">This shift</th><th>Reference (common practice)</th><th></th></tr></thead>

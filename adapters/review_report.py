@@ -34,6 +34,14 @@ from .shift_figures import (FLOOD_ALARMS, REPEAT_MIN, RATE_BIN, Incident, ShiftD
 
 #: Incidents drawn as panels; later ones are listed in one line each.
 MAX_PANELS = 60
+#: Lines shown per list (unacknowledged alarms, ...); the rest are counted.
+MAX_LIST_LINES = 40
+
+
+def _capped(lines: list[str], hint: str) -> list[str]:
+    if len(lines) <= MAX_LIST_LINES:
+        return lines
+    return lines[:MAX_LIST_LINES] + [f"... and {len(lines) - MAX_LIST_LINES} more ({hint})"]
 
 
 def _version() -> str:
@@ -130,14 +138,14 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
     floods = [f"{show_time(f.start, zone)} to {show_time(f.end, zone)}: {plural(f.alarms, 'alarm')} in "
               f"{human_duration((f.end - f.start).total_seconds())}" for f in fig.floods]
     lists = [
-        {"title": "Repeating alarms", "lines": [f"{r.feed_id} {r.rule}: {plural(r.episodes, 'episode')}"
-                                                for r in fig.repeating]},
+        {"title": "Repeating alarms", "lines": _capped([f"{r.feed_id} {r.rule}: {plural(r.episodes, 'episode')}"
+                                                        for r in fig.repeating], "the most repeated first")},
         {"title": "Standing alarms (active more than 24 h)", "lines": [
             f"#{s.id} {s.event.feed_id} {s.event.rule} since {show_time(s.event.start, zone)} "
             f"({human_duration((fig.until - s.event.start).total_seconds())} at the end)" for s in fig.standing]},
-        {"title": f"Unacknowledged alarms ({len(fig.unacked)})", "lines": [
+        {"title": f"Unacknowledged alarms ({len(fig.unacked)})", "lines": _capped([
             f"#{s.id} {s.event.feed_id} {s.event.rule} {s.event.severity} at {show_time(s.event.start, zone)}"
-            for s in fig.unacked]},
+            for s in fig.unacked], "leadline events --unacked lists them all")},
         {"title": "Shelved feeds", "lines": [
             f"{n.feed_id} until {show_time(n.expires_at, zone)} by {n.operator}: {n.text}" for n in fig.shelved]},
         {"title": "Stale feeds", "lines": list(fig.stale_feeds)},
@@ -147,6 +155,7 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
     return {
         "title": title,
         "subtitle": window_title(window, rv),
+        "figures_heading": "The shift in figures" if window.shift is not None else "The window in figures",
         "store_url": data.store_url,
         "zone_name": rv.zone_name,
         "generated": show_time(now, zone),

@@ -96,3 +96,12 @@ def test_an_empty_window_still_makes_a_page(shift_site, tmp_path):
     html = out.read_text(encoding="utf-8")
     assert "0 alarms started, in 0 incidents on 0 feeds." in html
     assert "No incidents in this window." in html
+
+
+def test_long_lists_are_cut_with_a_count():
+    from leadline.adapters.review_report import MAX_LIST_LINES, _capped
+
+    lines = [f"#{i}" for i in range(MAX_LIST_LINES + 5)]
+    cut = _capped(lines, "see leadline events")
+    assert cut[:-1] == lines[:MAX_LIST_LINES] and cut[-1] == "... and 5 more (see leadline events)"
+    assert _capped(lines[:3], "x") == lines[:3]
