@@ -63,7 +63,7 @@ PAGE = r"""<!DOCTYPE html>
 <h2>{{ figures_heading }}</h2>
 <p>{{ headline }}</p>
 <table class="reference">
-  <thead><tr><th>Figure</th><th class="num">This shift</th><th>Reference (common practice)</th><th></th></tr></thead>
+  <thead><tr><th>Figure</th><th class="num">{{ value_heading }}</th><th>Reference (common practice)</th><th></th></tr></thead>
   <tbody>
   {% for row in reference %}
     <tr><td>{{ row.figure }}</td><td class="num">{{ row.value }}</td><td>{{ row.reference }}</td>

@@ -156,6 +156,7 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
         "title": title,
         "subtitle": window_title(window, rv),
         "figures_heading": "The shift in figures" if window.shift is not None else "The window in figures",
+        "value_heading": "This shift" if window.shift is not None else "This window",
         "store_url": data.store_url,
         "zone_name": rv.zone_name,
         "generated": show_time(now, zone),

@@ -52,7 +52,8 @@ def write_summary(data: ShiftData, window: Window, rv: Review, out: TextIO) -> N
     print("", file=out)
     rows = [[r.figure, r.value, r.reference, "" if r.within is None else ("within" if r.within else "ABOVE")]
             for r in reference_rows(fig)]
-    write_aligned(("FIGURE", "THIS SHIFT", "REFERENCE (COMMON PRACTICE)", ""), rows, out)
+    value_heading = "THIS SHIFT" if window.shift is not None else "THIS WINDOW"
+    write_aligned(("FIGURE", value_heading, "REFERENCE (COMMON PRACTICE)", ""), rows, out)
     if fig.floods:
         print("", file=out)
         print("Floods:", file=out)

@@ -104,6 +104,7 @@ def test_summary_command_prints_the_figures_with_plurals(shift_site, capsys):
     lines = out.splitlines()
     assert lines[0].startswith("Summary of the night shift of 2026-03-13 (Europe/London)")
     assert "(12 h 0 min)" in lines[0]
+    assert "THIS SHIFT" in out
     assert "17 alarms started (severity: 13 alarm, 4 warning)" in out
     row = next(line for line in lines if line.startswith("Most alarms in any 10 minutes"))
     assert row.split()[6] == "12" and row.endswith("ABOVE")
@@ -122,5 +123,6 @@ def test_summary_over_since_and_until(shift_site, capsys):
                  "--config", str(shift_site.config)]) == 0
     out = capsys.readouterr().out
     assert "3 alarms started (severity: 3 warning)" in out
+    assert "THIS WINDOW" in out and "THIS SHIFT" not in out
     assert "(2 h 30 min)" in out.splitlines()[0]
     assert "Floods:" not in out
