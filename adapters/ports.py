@@ -123,6 +123,16 @@ class EventSink(Protocol):
     def stage_reject(self, sample: RejectSample) -> None:
         """Count a rejected input record and keep it as a sample."""
 
+    def stage_reject_sample(self, sample: RejectSample) -> None:
+        """Keep a rejected input record as a sample (bounded), without counting it."""
+
+    def stage_reject_count(self, source: str, reason: str, count: int, first_seen: datetime,
+                           last_seen: datetime) -> None:
+        """Add ``count`` rejects of one source and reason to the exact totals."""
+
+    def stage_evidence(self, record: Any) -> None:
+        """Stage the readings and forecasts around an episode, to commit with the events."""
+
     def stage_checkpoint(self, feed_id: str, state: bytes, model_version: int) -> None:
         """Stage a feed's stream state (the latest staged one per feed wins)."""
 

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from leadline.adapters import config_feeds
+from leadline.adapters.config import feeds as config_feeds
 from leadline.detector.errors import RuleError, StateFormatError
 from leadline.detector.feed_state import restore_monitor, snapshot_monitor
 from leadline.detector.fitting import fit

@@ -12,7 +12,7 @@ from __future__ import annotations
 import threading
 import time
 from datetime import datetime, timedelta, timezone
-from types import SimpleNamespace
+from leadline.detector.engine_output import EngineOutput
 
 import pytest
 
@@ -37,10 +37,10 @@ class ScriptedEngine:
         if reading.value > LIMIT:
             events.append(AlarmEvent(reading.feed_id, "range", "alarm", reading.timestamp,
                                      value_at_onset=reading.value, detail="above the scripted limit"))
-        return SimpleNamespace(events=events, state_changes=[], refit_requests=[])
+        return EngineOutput(events=events)
 
     def tick(self, now):
-        return SimpleNamespace(events=[], state_changes=[], refit_requests=[])
+        return EngineOutput()
 
     def checkpoints(self):
         return {}

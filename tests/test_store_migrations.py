@@ -73,7 +73,7 @@ def test_current_version_is_stamped_on_a_fresh_store(store_url: str) -> None:
 def test_an_older_store_is_refused_until_upgraded_explicitly(store_url: str) -> None:
     n = 30  # spans 12.5 h, so several hour buckets
     _make_v1_store(store_url, n)
-    with pytest.raises(SchemaVersionError, match=r"schema version 1, older than version 2.*upgraded explicitly"):
+    with pytest.raises(SchemaVersionError, match=rf"schema version 1, older than version {SCHEMA_VERSION}.*upgraded explicitly"):
         open_store(store_url)
     assert upgrade_store(store_url) == SCHEMA_VERSION
     with open_store(store_url) as s:

@@ -236,6 +236,8 @@ Next, try:
   leadline events --config {config_path} --shift 2026-10-20/night --format json
   leadline ack {first} --config {config_path} --by "A. Operator" --note "checked on site"
   leadline status --config {config_path}
+  leadline summary --config {config_path} --shift 2026-10-20/night
+  leadline report --config {config_path} --since 2026-10-19 --until 2026-10-21 --out {folder / 'report.html'}
 
 {CAUTION}""", file=out)
     store.close()

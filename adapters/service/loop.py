@@ -58,6 +58,7 @@ from typing import TYPE_CHECKING, Any
 
 from leadline.detector.errors import LeadlineError, StoreError
 from leadline.detector.events import AlarmEvent
+from leadline.detector.evidence import EvidenceRecorder
 from leadline.detector.readings import Reading
 
 from ..ports import AlarmPublisher, EventSink, Source
@@ -132,6 +133,8 @@ class Service:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
+        #: The readings and forecasts around each episode, staged with the events.
+        self.evidence = EvidenceRecorder()
         self.store = store
         self.sources = list(sources)
         self.publisher = publisher
@@ -247,7 +250,7 @@ class Service:
 
     def _process(self, source: Source, readings: list[Reading]) -> None:
         for reading in readings:
-            self._handle(self.engine.process(reading))
+            self._handle(self.engine.process(reading), reading)
             if self._latest_reading is None or reading.timestamp > self._latest_reading:
                 self._latest_reading = reading.timestamp
         for mark in source.durable_marks(readings):
@@ -257,7 +260,9 @@ class Service:
         self.readings_total += len(readings)
         self._readings_since_summary += len(readings)
 
-    def _handle(self, out: Any) -> None:
+    def _handle(self, out: Any, reading: Any = None) -> None:
+        for record in self.evidence.observe(out, reading):
+            self.store.stage_evidence(record)
         for event in out.events:
             self.store.stage_event(event)
             self._to_publish.append(event)
@@ -335,6 +340,8 @@ class Service:
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
             self.store.stage_checkpoint(feed_id, state, version)
+        for record in self.evidence.partial():  # episodes still open, so a review sees them
+            self.store.stage_evidence(record)
         self._last_checkpoint = time.monotonic()
 
     def _commit(self, force: bool = False) -> None:

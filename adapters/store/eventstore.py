@@ -30,6 +30,7 @@ from sqlalchemy import Engine, func, select
 from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.errors import StoreError
 from leadline.detector.events import AlarmEvent
+from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
 from .connect import create_store_engine, resolve_url, write_transaction
@@ -181,6 +182,14 @@ class EventWriter(StoreHandle):
                     f"event {ev.feed_id!r}/{ev.rule!r} at {ev.start.isoformat()} cannot be stored: "
                     f"its parameters are not JSON-serialisable ({exc})"
                 ) from exc
+
+    def stage_evidence(self, record: EvidenceRecord) -> None:
+        """Stage the evidence of an episode (:mod:`.evidence`); it commits with the events."""
+        self._check_open()
+        if not isinstance(record, EvidenceRecord):
+            raise StoreError(f"stage_evidence expects an EvidenceRecord, got {type(record).__name__}")
+        with self._lock:
+            self._buffer.add_evidence(record)
 
     def stage_checkpoint(self, feed_id: str, state: bytes, model_version: int) -> None:
         """Stage a feed's stream state (the latest staged one per feed wins)."""

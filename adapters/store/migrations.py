@@ -56,9 +56,15 @@ def _upgrade_1_to_2(conn: Connection) -> None:
             index.create(conn)
 
 
+def _upgrade_2_to_3(conn: Connection) -> None:
+    """Add the ``evidence`` table (readings and forecasts around each episode)."""
+    schema.build_metadata(3).tables["evidence"].create(conn)
+
+
 #: ``UPGRADES[v]`` turns a version ``v - 1`` database into version ``v``.
 UPGRADES: dict[int, tuple[str, Callable[[Connection], None]]] = {
     2: ("events.start_hour and ix_events_hour for alarm counts per hour", _upgrade_1_to_2),
+    3: ("evidence: readings and forecasts around each alarm episode", _upgrade_2_to_3),
 }
 
 _DESCRIPTIONS = {1: "first schema"} | {v: d for v, (d, _) in UPGRADES.items()}

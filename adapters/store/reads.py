@@ -17,7 +17,10 @@ from sqlalchemy import select
 from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.errors import StoreError
 
+from leadline.detector.evidence import EvidenceRecord
+
 from . import queries, schema
+from .evidence import read_evidence
 from .connect import write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
@@ -163,6 +166,10 @@ class EventQueries(StoreHandle):
     def reject_samples(self, source: str | None = None, reason: str | None = None) -> list[RejectSample]:
         """The kept samples of rejected input, oldest first."""
         return self._read("reading reject samples", queries.reject_samples, source, reason)
+
+    def evidence(self, keys: list[tuple[str, str, datetime]]) -> dict[tuple[str, str, datetime], EvidenceRecord]:
+        """The stored evidence of the given event keys ``(feed_id, rule, start)``; missing keys are absent."""
+        return self._read("reading evidence", read_evidence, list(keys))
 
     def feeds(self) -> list[Feed]:
         return self._read("listing feeds", queries.feeds)

@@ -23,6 +23,10 @@ Tables
     Per followed file: device, inode and the committed byte offset.
 ``reject_counts``, ``reject_samples``
     Rejected input: a count per (source, reason) and a bounded sample.
+``evidence``
+    The readings and forecasts around each alarm episode, keyed like the
+    event (start, feed, rule); packed by :mod:`.evidence`. Added in schema
+    version 3.
 
 Indexes (and the query each one serves)
 ---------------------------------------
@@ -69,7 +73,7 @@ from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
 from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 NOTE_KINDS = ("ack", "comment", "shelve")
 
@@ -107,7 +111,8 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     Version 2 added ``events.start_hour`` (whole hours since
     1970-01-01T00:00Z of ``start_at``, written by the store) and its
     index ``ix_events_hour``, so counting alarms per hour is an index-only
-    scan on both backends instead of a per-row date expression.
+    scan on both backends instead of a per-row date expression. Version 3
+    added the ``evidence`` table.
     """
     if not 1 <= version <= SCHEMA_VERSION:
         raise ValueError(f"schema version must be 1..{SCHEMA_VERSION}, got {version}")
@@ -259,7 +264,30 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
         _utc("seen_at"),
     )
     Index("ix_reject_samples_source", samples.c.source, samples.c.reason, samples.c.id)
+    if version >= 3:
+        _evidence_table(md)
     return md
+
+
+def _evidence_table(md: MetaData) -> Table:
+    """``evidence``: one row per episode, the slots around it packed (see :mod:`.evidence`)."""
+    return Table(
+        "evidence",
+        md,
+        Column("feed_id", Text, ForeignKey("feeds.feed_id"), nullable=False),
+        Column("rule", Text, nullable=False),
+        _utc("start_at"),
+        _utc("end_at", nullable=True),
+        Column("complete", Integer, nullable=False),
+        Column("slots", Integer, nullable=False),
+        Column("omitted_slots", Integer, nullable=False),
+        Column("base_epoch_s", Double, nullable=False),
+        Column("data", LargeBinary, nullable=False),
+        _utc("updated_at"),
+        PrimaryKeyConstraint("start_at", "feed_id", "rule"),
+        CheckConstraint("complete IN (0, 1)", name="complete_flag"),
+        CheckConstraint("slots >= 0", name="slots_nonnegative"),
+    )
 
 
 #: The tables at the current schema version, for the writer and the queries.
@@ -273,6 +301,7 @@ checkpoints = metadata.tables["checkpoints"]
 source_offsets = metadata.tables["source_offsets"]
 reject_counts = metadata.tables["reject_counts"]
 reject_samples = metadata.tables["reject_samples"]
+evidence = metadata.tables["evidence"]
 
 #: Every table name the store owns (to recognise a foreign or damaged schema).
 TABLE_NAMES = frozenset(metadata.tables)

@@ -2,8 +2,9 @@
 
 :class:`WriteBuffer` holds what the service has staged since the last flush:
 events (merged per key), the latest checkpoint per feed, the latest offset
-per followed file, and reject counts (exact deltas, staged apart from the
-samples) with a bounded sample. :func:`write_buffer`
+per followed file, reject counts (exact deltas, staged apart from the
+samples) with a bounded sample, and evidence records (:mod:`.evidence`).
+:func:`write_buffer`
 writes a buffer inside a transaction the caller opened, so the events, the
 checkpoints and the CSV offsets that produced them commit together, or not
 at all.
@@ -38,8 +39,10 @@ from sqlalchemy.engine import Dialect
 
 from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.events import SEVERITIES, AlarmEvent
+from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
+from .evidence import write_evidence
 from .coltypes import dumps_json
 from .dialects import driver_time_for, insert_for
 
@@ -84,9 +87,11 @@ class WriteBuffer:
         self.checkpoints: dict[str, tuple[bytes, int]] = {}
         self.offsets: dict[tuple[str, str], SourceOffset] = {}
         self.rejects: dict[tuple[str, str], _RejectTally] = {}
+        #: Evidence records per event key; the latest staged one wins.
+        self.evidence: dict[tuple[str, str, datetime], EvidenceRecord] = {}
 
     def __len__(self) -> int:
-        return len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects)
+        return len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
 
     def add_event(self, ev: AlarmEvent) -> None:
         """Stage ``ev``, merged with a staged copy of the same episode.
@@ -100,6 +105,12 @@ class WriteBuffer:
             self.events[ev.key] = ev
         else:
             self.events[ev.key] = merge_events(old, ev)
+
+    def add_evidence(self, record: EvidenceRecord) -> None:
+        """Stage an evidence record; a complete one is not replaced by an incomplete one."""
+        old = self.evidence.get(record.key)
+        if old is None or record.complete or not old.complete:
+            self.evidence[record.key] = record
 
     def add_checkpoint(self, feed_id: str, state: bytes, model_version: int) -> None:
         self.checkpoints[feed_id] = (bytes(state), int(model_version))
@@ -293,7 +304,7 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
         The number of event rows upserted.
     """
     insert = insert_for(conn)
-    feed_ids = {k[0] for k in buf.events} | set(buf.checkpoints)
+    feed_ids = {k[0] for k in buf.events} | set(buf.checkpoints) | {k[0] for k in buf.evidence}
     if feed_ids:
         stmt = insert(schema.feeds).on_conflict_do_nothing(index_elements=[schema.feeds.c.feed_id])
         conn.execute(stmt, [{"feed_id": f, "created_at": now} for f in sorted(feed_ids)])
@@ -301,6 +312,9 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
     if buf.events:
         up = event_upsert_for(conn.dialect)
         conn.exec_driver_sql(up.sql, up.rows(buf.events.values(), now, buf.parameters_json))
+
+    if buf.evidence:
+        write_evidence(conn, insert, buf.evidence.values(), now)
 
     if buf.checkpoints:
         cp = schema.checkpoints
