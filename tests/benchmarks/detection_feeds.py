@@ -36,6 +36,10 @@ class Family:
     start: datetime = datetime(2025, 1, 6, tzinfo=timezone.utc)
     cycle: bool = False
     note: str = ""
+    #: range of the onset (readings into a trial); the clean stretch before it counts for false alarms
+    onsets: tuple[int, int] = (150, 351)
+    #: a family whose daily scheduled refits are dear (15-minute slots: one refit per 96 readings)
+    costly: bool = False
 
     @property
     def label(self) -> str:
@@ -57,9 +61,11 @@ FAMILIES = [
     Family("arima111", ar=(0.6,), ma=(-0.3,), d=1, note="ARIMA(1,1,1), phi 0.6, theta -0.3"),
     Family("arima011", ma=(-0.5,), d=1, note="ARIMA(0,1,1), theta -0.5"),
     # 15-minute flow, daily + weekly cycle on London time; the trials start
-    # 2025-03-30 00:00 UTC, one hour before the clocks go forward (01:00 UTC)
+    # 2025-03-30 00:00 UTC, one hour before the clocks go forward (01:00 UTC).
+    # Default settings refit every day (96 slots), so onsets come early (after
+    # the DST change, before the first scheduled refit) to keep refits per trial down
     Family("flow15", ar=(0.5,), mean=50.0, interval_s=900.0, cycle=True,
-           start=datetime(2025, 3, 16, tzinfo=timezone.utc),
+           start=datetime(2025, 3, 16, tzinfo=timezone.utc), onsets=(20, 81), costly=True,
            note="15-min flow, daily + weekly cycle on Europe/London time, AR(1) 0.5 noise, DST change in the trials"),
     # a flow parked at a set point, whole units: 2/3 of readings repeat
     Family("quantized", mean=40.0, sigma=0.4, resolution=1.0,
