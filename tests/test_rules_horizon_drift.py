@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 
@@ -34,12 +35,14 @@ def stream_at_end(results) -> Stream:
                   int(results.nobs))
 
 
+@functools.lru_cache(maxsize=None)
 def fitted_111():
     y = arima_series(460, (0.6,), (-0.3,), seed=11)
     res = SARIMAX(y[:400], order=(1, 1, 1)).fit(disp=False)
     return res, y[400:]
 
 
+@functools.lru_cache(maxsize=None)
 def fitted_nile_011():
     # statsmodels' bundled Nile data (annual flow at Aswan, 1871-1970)
     volume = nile.load_pandas().data["volume"].to_numpy(dtype=float)

@@ -68,7 +68,20 @@ are nested sums, strongly correlated, so a per-slot tail probability does
 not give the false-alarm rate. :func:`calibrate_limit` finds the limit by
 simulation from the model itself (seeded): the fraction of anchor windows
 whose max_m |A_m| exceeds the limit, divided by H, is the rate of alarms
-per slot.
+per slot. Measured with it (100,000 windows, two seeds agreeing within
+0.04): the limits hardly depend on the model, and lie well below the
+Bonferroni value z_{1 - r/2} of a per-slot test:
+
+==========================  ===========  ===========  ===========  ===========
+budget r (alarms per slot)  H = 24       H = 48       H = 96       z_{1 - r/2}
+==========================  ===========  ===========  ===========  ===========
+1 per week, 1-min slots     3.43 - 3.49  3.28 - 3.31  3.13 - 3.16  3.89
+0.3 per 1,000               3.07 - 3.17  2.94 - 2.98  2.75 - 2.79  3.62
+1 per week, 15-min slots    2.56 - 2.61  2.34 - 2.39  2.09 - 2.13  3.18
+==========================  ===========  ===========  ===========  ===========
+
+(ARIMA(0,1,1) with theta -0.5 and 0, ARIMA(1,1,1) with phi 0.6, theta
+-0.3.) Still, calibrate per model: the limit is cheap to compute.
 """
 
 from __future__ import annotations
