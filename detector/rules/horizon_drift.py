@@ -162,6 +162,7 @@ class HorizonDrift:
         self._sum_e = 0.0
         self._sum_var = 0.0
         self._n = 0
+        self._step = 0
         self._anchored = False
 
     def request_anchor(self) -> None:
@@ -272,7 +273,7 @@ class HorizonDrift:
     def state_dict(self) -> dict:
         """The running state as a JSON-serialisable dict (``"v": 1``); the system is not included."""
         return {"v": STATE_VERSION, "horizon": self.horizon, "k": int(self._Z.shape[0]),
-                "anchored": self._anchored, "h": self._h, "step": int(getattr(self, "_step", 0)),
+                "anchored": self._anchored, "h": self._h, "step": self._step,
                 "a": self._a.tolist(), "P": self._P.tolist(), "w": self._w.tolist(),
                 "sum_e": self._sum_e, "sum_var": self._sum_var, "n": self._n}
 
