@@ -208,6 +208,18 @@ class HorizonDrift:
             The slot's step (``Stream.step``).
         one_step_forecast : float
             The stream's forecast Z a_t + d_t of this slot (``Stream.peek(value).forecast``).
+            A change of d_t inside a window (``Stream.shift_level``) moves
+            f_h with it; call :meth:`request_anchor` after one.
+
+        Returns
+        -------
+        HorizonStat
+            Anchored afresh first when no anchor is held or H readings were scored.
+
+        Raises
+        ------
+        RuleError
+            A slot skipped or repeated inside a window.
         """
         if not self._anchored or self._h >= self.horizon:
             self.anchor(state, cov, step)
