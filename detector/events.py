@@ -50,6 +50,9 @@ class AlarmEvent:
         The model version that scored the onset reading.
     detail : str
         One line a person can read: what the rule saw.
+    incident_start : datetime or None
+        The start of the incident this episode belongs to
+        (:mod:`leadline.detector.incidents`); None before it is grouped.
     caution : str
         Always :data:`CAUTION`.
     """
@@ -67,6 +70,7 @@ class AlarmEvent:
     parameters: dict[str, Any] = field(default_factory=dict)
     model_version: int | None = None
     detail: str = ""
+    incident_start: datetime | None = None
     caution: str = CAUTION
 
     def __post_init__(self) -> None:
@@ -76,6 +80,8 @@ class AlarmEvent:
             raise ValueError("AlarmEvent.start must be timezone-aware (UTC)")
         if self.end is not None and self.end.tzinfo is None:
             raise ValueError("AlarmEvent.end must be timezone-aware (UTC)")
+        if self.incident_start is not None and self.incident_start.tzinfo is None:
+            raise ValueError("AlarmEvent.incident_start must be timezone-aware (UTC)")
 
     @property
     def key(self) -> tuple[str, str, datetime]:
