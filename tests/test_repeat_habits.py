@@ -42,3 +42,33 @@ def test_json_round_trip_and_version():
     assert RepeatHabits.from_json(h.to_json()) == h
     with pytest.raises(StateFormatError, match="version"):
         RepeatHabits.from_json({"v": 7})
+
+
+def _inn(value, forecast=32.9, std=0.1):
+    from leadline.detector.innovation import Innovation
+    return Innovation(0, value, forecast, value - forecast, std * std, (value - forecast) / std,
+                      forecast - 2 * std, forecast + 2 * std, 0.95, True)
+
+
+def test_flatline_on_a_parked_flow_waits_for_its_habits_and_still_finds_a_rare_value_frozen():
+    from leadline.detector.rules.flatline import FlatlineRule
+    rng = np.random.default_rng(22)
+    parked = np.where(rng.random(3000) < 0.7, 32.0, np.round(rng.normal(32, 2, 3000)))
+    habits = learn_repeat_habits(parked)
+    with_habits = FlatlineRule(0.0, 1.0, 1e-6, habits=habits)
+    model_only = FlatlineRule(0.0, 1.0, 1e-6)
+
+    def run_length_to_alarm(rule, value, forecast=32.9, std=0.1):
+        rule.reset()
+        for n in range(1, 2000):
+            if rule.assess(_inn(value, forecast, std)).severity is not None:
+                return n
+        return None
+
+    # the model alone (a tight forecast off the set point) calls a few repeats of 32 a flatline
+    assert run_length_to_alarm(model_only, 32.0) <= 3
+    # with the habits, 32 repeats as usual: no alarm before its longest training run
+    assert run_length_to_alarm(with_habits, 32.0) > habits.longest_run(32.0)
+    # a value seldom held, frozen, is still found within a few dozen readings
+    # (the model, following the frozen value, forecasts it with a spread of one unit)
+    assert run_length_to_alarm(with_habits, 44.0, forecast=44.0, std=1.0) <= 40
