@@ -34,3 +34,22 @@ def parse_duration_s(text: str | float | int) -> float:
     if seconds <= 0:
         raise SpecError(f"duration {text!r} must be positive")
     return seconds
+
+
+def human_duration(seconds: float) -> str:
+    """A duration as a person reads it: ``"3 d 0 h 17 min"``, ``"2 h 5 min"``, ``"45 s"``.
+
+    Whole minutes from one minute on (seconds are dropped), whole seconds below;
+    the largest unit leads and every smaller unit down to minutes is shown.
+    """
+    s = max(0.0, float(seconds))
+    if s < 60:
+        return f"{s:.0f} s"
+    minutes = int(s // 60)
+    days, rest = divmod(minutes, 1440)
+    hours, mins = divmod(rest, 60)
+    if days:
+        return f"{days} d {hours} h {mins} min"
+    if hours:
+        return f"{hours} h {mins} min"
+    return f"{mins} min"

@@ -52,6 +52,9 @@ class AlarmEvent:
         The model version that scored the onset reading.
     detail : str
         One line a person can read: what the rule saw.
+    incident_start : datetime or None
+        The start of the incident this episode belongs to
+        (:mod:`leadline.detector.incidents`); None before it is grouped.
     caution : str
         Always :data:`CAUTION`.
 
@@ -75,6 +78,7 @@ class AlarmEvent:
     parameters: dict[str, Any] = field(default_factory=dict)
     model_version: int | None = None
     detail: str = ""
+    incident_start: datetime | None = None
     caution: str = CAUTION
 
     def __post_init__(self) -> None:
@@ -86,6 +90,9 @@ class AlarmEvent:
             raise DataError(f"AlarmEvent for {self.feed_id!r}: start must be a timezone-aware datetime (UTC)")
         if self.end is not None and getattr(self.end, "tzinfo", None) is None:
             raise DataError(f"AlarmEvent for {self.feed_id!r}: end must be a timezone-aware datetime (UTC) or None")
+        if self.incident_start is not None and getattr(self.incident_start, "tzinfo", None) is None:
+            raise DataError(f"AlarmEvent for {self.feed_id!r}: incident_start must be a timezone-aware datetime "
+                            "(UTC) or None")
 
     @property
     def key(self) -> tuple[str, str, datetime]:

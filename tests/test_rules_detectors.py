@@ -309,11 +309,28 @@ def test_stale_is_raised_by_the_clock_with_a_deterministic_start():
     assert rule.assess(T0 + timedelta(minutes=4, seconds=59)) is None
     verdict, start = rule.assess(T0 + timedelta(minutes=7, seconds=13))
     assert verdict.severity == "alarm" and start == T0 + timedelta(minutes=5)
-    assert "no reading for 433 s" in verdict.detail
+    assert "no reading since 2024-05-01T00:00:00+00:00" in verdict.detail
     rule.seen(T0 + timedelta(minutes=8))
     assert rule.assess(T0 + timedelta(minutes=9)) is None
     with pytest.raises(RuleError, match="interval_s"):
         StaleRule(interval_s=0)
+
+
+def test_stale_backlog_catching_up_opens_nothing_and_a_gap_in_the_readings_is_one_outage():
+    rule = StaleRule(interval_s=60, missing_intervals=5, last_seen=T0)
+    # a head-end delivers three days late: readings arrive between every two ticks
+    now = T0 + timedelta(days=3)
+    for minute in range(1, 200):
+        assert rule.seen(T0 + timedelta(minutes=minute)) is None
+        assert rule.assess(now) is None
+    # a hole of 20 minutes inside the backlog is one outage, opened m intervals after the last reading
+    verdict, start = rule.seen(T0 + timedelta(minutes=219))
+    assert start == T0 + timedelta(minutes=204)
+    assert "no reading for 20 min" in verdict.detail
+    # silence after the backlog: the first tick with nothing new arrived opens it
+    assert rule.assess(now) is None  # a reading arrived since the previous tick
+    verdict, start = rule.assess(now + timedelta(seconds=1))
+    assert start == T0 + timedelta(minutes=224)
 
 
 # ------------------------------------------------------------------- range

@@ -38,6 +38,20 @@ from memory].
 
 With zero tolerance and zero resolution, an exact repeat of a continuous
 reading has probability 0 and alarms at once.
+
+**The feed's own habits.** A quantized meter, a flow parked at a set point
+or a register that does not move at night repeats its reading far more
+often than a Gaussian F_t allows. With the training window's repeat counts
+(:class:`~.repeat_habits.RepeatHabits`), each factor is
+
+.. math::
+
+    p_t = \\max\\big(p_t^{\\text{model}},\\ \\hat p_{y_{t-1}}\\big)
+
+the larger of the model's probability and the feed's own rate of repeating
+that value, and no run is reported before it outlasts the longest run of
+that value in training. A frozen transmitter holding a value it seldom
+held gets the small pooled rate and is found within a few dozen readings.
 """
 
 from __future__ import annotations
@@ -49,6 +63,7 @@ from ..errors import RuleError
 from ..innovation import Innovation
 from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry
 from .lifecycle import Assessment, LifecycleConfig
+from .repeat_habits import RepeatHabits
 
 #: Default run probability limit (sigma mode).
 DEFAULT_RUN_PROBABILITY_LIMIT = 1e-6
@@ -106,12 +121,16 @@ class FlatlineRule(RuleBase):
         readings are not quantized.
     run_probability_limit : float
         Alarm when the run's probability falls below this, in (0, 1).
+    habits : RepeatHabits or None
+        The feed's repeat counts from training (module Notes); None: the
+        model's probability alone.
     """
 
     name = "flatline"
 
     def __init__(self, tolerance: float = 0.0, resolution: float = 0.0,
-                 run_probability_limit: float = DEFAULT_RUN_PROBABILITY_LIMIT) -> None:
+                 run_probability_limit: float = DEFAULT_RUN_PROBABILITY_LIMIT,
+                 habits: RepeatHabits | None = None) -> None:
         if not (math.isfinite(tolerance) and tolerance >= 0):
             raise RuleError(f"flatline tolerance must be a finite number >= 0, got {tolerance!r}")
         if not (math.isfinite(resolution) and resolution >= 0):
@@ -122,6 +141,9 @@ class FlatlineRule(RuleBase):
         self.resolution = float(resolution)
         self.run_probability_limit = float(run_probability_limit)
         self.half_width = max(self.tolerance, self.resolution / 2.0)
+        if habits is not None and not isinstance(habits, RepeatHabits):
+            raise RuleError(f"flatline habits must be RepeatHabits or None, got {type(habits).__name__}")
+        self.habits = habits
         self._log_limit = math.log(self.run_probability_limit)
         self.reset()
 
@@ -176,9 +198,13 @@ class FlatlineRule(RuleBase):
             self._log_p = 0.0
             return Assessment(None, True, a)
         p = repeat_probability(previous, innovation.forecast, innovation.std, self.half_width)
+        habitual_run = 0
+        if self.habits is not None:
+            p = max(p, self.habits.probability(previous))
+            habitual_run = self.habits.longest_run(previous)
         self._run += 1
         self._log_p += math.log(p) if p > 0 else -math.inf
-        if self._log_p < self._log_limit:
+        if self._log_p < self._log_limit and self._run > habitual_run:
             shown = "0" if self._log_p == -math.inf else f"{math.exp(self._log_p):.2g}"
             detail = (f"reading {y:.6g} repeated {self._run} times (within {self.half_width:.3g}); "
                       f"probability of such a run under the model {shown} < {self.run_probability_limit:.2g}")

@@ -1,9 +1,23 @@
-"""Stale feed rule: no reading for m nominal intervals, raised by the clock.
+"""Stale feed rule: no reading for m nominal intervals; one event per outage.
 
-The engine calls :meth:`StaleRule.tick` with the current time (wall-clock
-time live, the data time in a replay); a reading calls :meth:`StaleRule.seen`.
-Only a reading with a value counts: a slot reported empty (NaN) does not
-keep a feed fresh.
+Silence is judged in reading time against the clock. The engine calls
+:meth:`StaleRule.assess` with the current time (wall-clock time live, the
+data time in a replay); a reading calls :meth:`StaleRule.seen`. Only a
+reading with a value counts: a slot reported empty (NaN) does not keep a
+feed fresh.
+
+* **Live.** The clock passes ``last_seen + m * interval_s`` and no reading
+  arrived since the previous clock tick: the outage opens. It closes when
+  readings resume, at the time of the first one, and its detail gives the
+  outage's length in words ("3 d 0 h 17 min").
+* **A backlog.** While late readings (older than the limit at the
+  previous tick) keep arriving between ticks, the feed is catching up,
+  not silent: nothing new opens, however old the readings.
+  A backlog that fills the gap raises nothing for the part it fills.
+* **A gap in the readings themselves** (a replay, or a backlog with a hole
+  in it): a reading more than ``m * interval_s`` after the previous one is
+  one outage, opened at ``previous + m * interval_s`` and closed at the
+  reading (:meth:`StaleRule.seen` returns it).
 
 The episode's start is *not* the time of the tick that noticed the silence
 but the deterministic instant ``last_seen + m * interval_s``, so that a
@@ -16,6 +30,7 @@ import math
 from datetime import datetime, timedelta
 from typing import Any
 
+from ..durations import human_duration
 from ..errors import RuleError
 from .contract import BuildContext, RuleBase, RuleEntry, time_from_json, time_to_json
 from .lifecycle import Assessment, LifecycleConfig
@@ -51,6 +66,9 @@ class StaleRule(RuleBase):
         self.interval_s = float(interval_s)
         self.missing_intervals = float(missing_intervals)
         self.last_seen = last_seen
+        # a late reading arrived since the previous clock tick: the feed is catching up, not silent
+        self.catching_up = False
+        self.last_tick: datetime | None = None
 
     @property
     def timeout(self) -> timedelta:
@@ -64,31 +82,63 @@ class StaleRule(RuleBase):
         return {"due": due.isoformat() if due else None}
 
     def state_dict(self) -> dict[str, Any]:
-        """The time of the last reading with a value (ISO 8601), as plain JSON values."""
-        return {"v": self.STATE_VERSION, "last_seen": time_to_json(self.last_seen)}
+        """The last reading with a value and the last clock tick (ISO 8601), as plain JSON values."""
+        return {"v": self.STATE_VERSION, "last_seen": time_to_json(self.last_seen),
+                "last_tick": time_to_json(self.last_tick), "catching_up": self.catching_up}
 
     def load_state(self, state: Any) -> None:
-        self.last_seen = time_from_json(self._check_state(state)["last_seen"])
+        state = self._check_state(state)
+        self.last_seen = time_from_json(state["last_seen"])
+        # states saved before the clock was kept lack these two: start as after a restart
+        self.last_tick = time_from_json(state.get("last_tick"))
+        self.catching_up = bool(state.get("catching_up", False))
 
-    def seen(self, timestamp: datetime) -> None:
-        """Note a reading with a value at ``timestamp`` (an older one is ignored)."""
-        if self.last_seen is None or timestamp > self.last_seen:
-            self.last_seen = timestamp
+    def seen(self, timestamp: datetime) -> tuple[Assessment, datetime] | None:
+        """Note a reading with a value at ``timestamp`` (an older one is ignored).
+
+        Returns
+        -------
+        (Assessment, start) or None
+            When the reading ends a gap longer than the limit in reading time:
+            the outage's raise assessment and its start (the caller opens and
+            closes it at ``timestamp``). None otherwise.
+        """
+        if self.last_tick is None or self.last_tick - timestamp > self.timeout:
+            self.catching_up = True
+        previous = self.last_seen
+        if previous is not None and timestamp <= previous:
+            return None
+        self.last_seen = timestamp
+        if previous is None or timestamp - previous <= self.timeout:
+            return None
+        return Assessment("alarm", False, math.nan, self.outage_detail(previous, timestamp)), previous + self.timeout
+
+    def outage_detail(self, last: datetime, resumed: datetime | None) -> str:
+        """The words for an outage from the reading at ``last`` to the one at ``resumed`` (None: still silent)."""
+        if resumed is None:
+            return (f"no reading since {last.isoformat()} (limit {self.missing_intervals:g} intervals of "
+                    f"{human_duration(self.interval_s)})")
+        return (f"no reading for {human_duration((resumed - last).total_seconds())}, from {last.isoformat()} "
+                f"to {resumed.isoformat()} (limit {self.missing_intervals:g} intervals of "
+                f"{human_duration(self.interval_s)})")
 
     def due(self) -> datetime | None:
         """The instant the feed goes stale if nothing arrives, or None before any reading."""
         return None if self.last_seen is None else self.last_seen + self.timeout
 
     def assess(self, now: datetime) -> tuple[Assessment, datetime] | None:
-        """At clock time ``now``: (raise assessment, episode start) when stale, else None."""
+        """At clock time ``now``: (raise assessment, episode start) when stale, else None.
+
+        None while late readings keep arriving between ticks (a backlog
+        catching up): a reading is late when it is older than the limit at
+        the previous tick, and every reading before the first tick counts.
+        """
+        catching_up, self.catching_up = self.catching_up, False
+        self.last_tick = now if self.last_tick is None else max(self.last_tick, now)
         due = self.due()
-        if due is None or now < due:
+        if due is None or now < due or catching_up:
             return None
-        silent_s = (now - self.last_seen).total_seconds()
-        detail = (f"no reading for {silent_s:.0f} s ({silent_s / self.interval_s:.1f} nominal intervals of "
-                  f"{self.interval_s:g} s; limit {self.missing_intervals:g}); last reading at "
-                  f"{self.last_seen.isoformat()}")
-        return Assessment("alarm", False, math.nan, detail), due
+        return Assessment("alarm", False, math.nan, self.outage_detail(self.last_seen, None)), due
 
 
 def build(section: Any, ctx: BuildContext) -> StaleRule | None:
