@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import FitError
+from .errors import DataError, FitError
 from .estimation import fit_spec
 from .fitted_model import FittedModel, as_series, ljung_box
 from .harmonic_selection import choose_harmonics
@@ -76,6 +76,9 @@ def fit(values: Any, spec: ModelSpec | str, *, calendar: Any = None, timestamps_
     epoch = None if timestamps_epoch_s is None else np.asarray(timestamps_epoch_s, dtype=float)
     if epoch is not None and epoch.shape != y.shape:
         raise FitError(f"timestamps shape {epoch.shape} does not match values shape {y.shape}")
+    if epoch is not None and not np.all(np.isfinite(epoch)):
+        bad = int(np.flatnonzero(~np.isfinite(epoch))[0])
+        raise DataError(f"timestamps must all be finite epoch seconds; slot {bad} is {epoch[bad]!r}")
     if epoch is not None and epoch.size > 1:
         interval_s = float(epoch[1] - epoch[0])
     if isinstance(spec, str):

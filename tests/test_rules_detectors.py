@@ -318,8 +318,11 @@ def test_stale_is_raised_by_the_clock_with_a_deterministic_start():
 
 def test_stale_backlog_catching_up_opens_nothing_and_a_gap_in_the_readings_is_one_outage():
     rule = StaleRule(interval_s=60, missing_intervals=5, last_seen=T0)
-    # a head-end delivers three days late: readings arrive between every two ticks
     now = T0 + timedelta(days=3)
+    # the feed is silent: the clock opens one outage
+    verdict, start = rule.assess(now - timedelta(seconds=1))
+    assert start == T0 + timedelta(minutes=5)
+    # then a head-end delivers three days late: readings arrive between every two ticks
     for minute in range(1, 200):
         assert rule.seen(T0 + timedelta(minutes=minute)) is None
         assert rule.assess(now) is None

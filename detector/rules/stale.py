@@ -103,7 +103,7 @@ class StaleRule(RuleBase):
             the outage's raise assessment and its start (the caller opens and
             closes it at ``timestamp``). None otherwise.
         """
-        if self.last_tick is None or self.last_tick - timestamp > self.timeout:
+        if self.last_tick is not None and self.last_tick - timestamp > self.timeout:
             self.catching_up = True
         previous = self.last_seen
         if previous is not None and timestamp <= previous:
@@ -131,7 +131,7 @@ class StaleRule(RuleBase):
 
         None while late readings keep arriving between ticks (a backlog
         catching up): a reading is late when it is older than the limit at
-        the previous tick, and every reading before the first tick counts.
+        the previous tick.
         """
         catching_up, self.catching_up = self.catching_up, False
         self.last_tick = now if self.last_tick is None else max(self.last_tick, now)
