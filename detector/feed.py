@@ -427,6 +427,12 @@ class FeedLifecycle:
             f"{reason}; {len(p.buffer)} readings since the request replayed"))
         return out
 
+    def accept_level(self, at: datetime, by: str, note: str) -> EngineOutput:
+        """Close the open level-shift episode: the present level is the new normal (:meth:`FeedMonitor.accept_level`)."""
+        if self.monitor is None or not self.monitor.level_episode_open:
+            raise DataError(f"feed {self.feed_id!r} has no open level-shift episode to accept")
+        return EngineOutput(events=self.monitor.accept_level(at, by, note))
+
     def refit_failed(self, error: str) -> EngineOutput:
         p = self.pending
         if p is None:

@@ -63,8 +63,9 @@ from ..events import AlarmEvent
 from ..innovation import Innovation
 from . import registry
 from .contract import BuildContext, check_state, innovation_from_json, innovation_to_json
+from .level_condition import LevelCondition
 from .level_shift import estimate_level_shift
-from .lifecycle import AlarmLifecycle
+from .lifecycle import AlarmLifecycle, Assessment
 from .limits import AlarmLimits
 from .monitor_config import MonitorConfig, StepResult
 
@@ -153,6 +154,13 @@ class FeedMonitor:
         # (direction, first step, signals) of CUSUM signals not yet confirmed
         self._unconfirmed: tuple[int, int, int] | None = None
         self.last_reanchor: dict[str, Any] | None = None
+        #: The departure of the readings' level from the level before the open CUSUM episode.
+        flat = self.rules.get("flatline")
+        self.level = LevelCondition(resolution=float(getattr(flat, "resolution", self.config.flatline_resolution)))
+        self._level_age = 0  # readings kept since the condition started
+        self._level_onset = ""  # the open CUSUM episode's detail at onset
+        self._return_step: int | None = None  # the step at which the condition stopped holding
+        self._last_reanchor_step = 0  # the step of the last re-anchoring
 
     # ---------------------------------------------------------------- public
     def process(self, value: float, timestamp: datetime) -> StepResult:
@@ -178,10 +186,7 @@ class FeedMonitor:
         version = self.stream.model_version
         events: list[AlarmEvent] = []
         if not math.isnan(value) and self.stale is not None:
-            self.stale.seen(timestamp)
-            life = self.lifecycles["stale"]
-            if life.is_active:
-                events.append(life.close(timestamp))
+            events += self._stale_seen(timestamp, version)
 
         if self.range is not None and not math.isnan(value):
             verdict = self.range.assess(value)
@@ -197,6 +202,11 @@ class FeedMonitor:
                         rule.skip_slot()
                 return events
             events += life.step(verdict, timestamp, None, version)
+
+        if math.isfinite(value):
+            self.level.observe(value)
+            if self.level.tracking:
+                self._level_age += 1
 
         absorb = True
         shock = None
@@ -240,6 +250,8 @@ class FeedMonitor:
             verdict = rule.assess(inn)
             if rule is self.cusum:
                 signal = rule.last_signal
+                events += self._cusum_step(verdict, signal, timestamp, inn, version)
+                continue
             if rule is self.noise_burst and verdict is not None and verdict.severity is not None:
                 burst_now = True
             events += self.lifecycles[rule.name].step(verdict, timestamp, inn, version)
@@ -293,6 +305,9 @@ class FeedMonitor:
         """
         if old.stale is not None and self.stale is not None:
             self.stale.last_seen = old.stale.last_seen
+        # the readings' level and the level before an open episode do not depend on the model
+        self.level.load_state(old.level.state_dict())
+        self._level_age, self._level_onset, self._return_step = old._level_age, old._level_onset, None
         closed = []
         for name, life in old.lifecycles.items():
             if not life.is_active:
@@ -320,8 +335,9 @@ class FeedMonitor:
                 "model_version": self.stream.model_version, "rules": rules}
 
     # ----------------------------------------------------------------- state
-    #: Layout version of :meth:`state_dict`.
-    STATE_VERSION = 1
+    #: Layout version of :meth:`state_dict` (2: the level condition added; a version 1 state loads
+    #: with the condition tracking nothing, its recent readings empty).
+    STATE_VERSION = 2
 
     def state_dict(self) -> dict[str, Any]:
         """The running state of the monitor, its rules and their lifecycles, as plain JSON values.
@@ -342,6 +358,8 @@ class FeedMonitor:
             "unconfirmed": None if self._unconfirmed is None else list(self._unconfirmed),
             "rules": {name: rule.state_dict() for name, rule in self.rules.items()},
             "lifecycles": {name: life.state_dict() for name, life in self.lifecycles.items()},
+            "level": {"condition": self.level.state_dict(), "age": self._level_age, "onset_detail": self._level_onset,
+                      "return_step": self._return_step, "last_reanchor_step": self._last_reanchor_step},
         }
 
     def load_state(self, state: Any) -> None:
@@ -352,7 +370,12 @@ class FeedMonitor:
         StateFormatError
             An unknown version, or rules that differ from this monitor's.
         """
-        state = check_state(state, f"monitor of feed {self.feed_id!r}", self.STATE_VERSION)
+        owner = f"monitor of feed {self.feed_id!r}"
+        if isinstance(state, dict) and state.get("v") == 1:
+            state = {**state, "v": self.STATE_VERSION, "level": None}
+        state = check_state(state, owner, self.STATE_VERSION)
+        if "level" not in state:
+            raise StateFormatError(f"{owner}: saved state of version {self.STATE_VERSION} lacks 'level'")
         for part, mine in (("rules", self.rules), ("lifecycles", self.lifecycles)):
             if set(state[part]) != set(mine):
                 raise StateFormatError(f"saved monitor state holds {part} {sorted(state[part])}, "
@@ -377,8 +400,140 @@ class FeedMonitor:
             rule.load_state(state["rules"][name])
         for name, life in self.lifecycles.items():
             life.load_state(state["lifecycles"][name])
+        level = state["level"]
+        self.level.reset()
+        self._level_age, self._level_onset, self._return_step = 0, "", None
+        self._last_reanchor_step = 0
+        if level is not None:
+            self.level.load_state(level["condition"])
+            self._level_age = int(level["age"])
+            self._level_onset = str(level["onset_detail"])
+            self._return_step = None if level["return_step"] is None else int(level["return_step"])
+            self._last_reanchor_step = int(level["last_reanchor_step"])
+
+    def accept_level(self, when: datetime, by: str, note: str) -> list[AlarmEvent]:
+        """An operator accepts the feed's present level as its new normal.
+
+        Closes the open CUSUM (level-shift) episode at ``when`` with the
+        detail "accepted as the new normal by {by}: {note}" and stops the
+        level condition; the CUSUM restarts. The stream already forecasts
+        on the new level (it was re-anchored when the shift was confirmed).
+
+        Returns
+        -------
+        list of AlarmEvent
+            The cleared event (empty when no level episode is open).
+        """
+        if not isinstance(when, datetime) or when.tzinfo is None:
+            raise DataError(f"feed {self.feed_id!r}: accept time must be a timezone-aware datetime, got {when!r}")
+        life = self.lifecycles.get("cusum")
+        if life is None or not life.is_active:
+            return []
+        event = life.close(when, detail=f"accepted as the new normal by {by}: {note}")
+        self._end_level_episode()
+        return [event]
+
+    @property
+    def level_episode_open(self) -> bool:
+        """A CUSUM (level-shift) episode is open."""
+        life = self.lifecycles.get("cusum")
+        return life is not None and life.is_active
 
     # ------------------------------------------------------------- internals
+    def _stale_seen(self, timestamp: datetime, version: int | None) -> list[AlarmEvent]:
+        """A reading with a value: close a live outage, or report a gap in reading time as one outage."""
+        last = self.stale.last_seen
+        gap = self.stale.seen(timestamp)
+        life = self.lifecycles["stale"]
+        if life.is_active:
+            detail = None if last is None or timestamp <= last else self.stale.outage_detail(last, timestamp)
+            return [life.close(timestamp, detail=detail)]
+        if gap is None:
+            return []
+        verdict, start = gap
+        opened = life.open_now(verdict, start, None, version)
+        return [opened, life.close(timestamp)]
+
+    def _cusum_step(self, verdict: Assessment | None, signal: Any, when: datetime, inn: Innovation,
+                    version: int | None) -> list[AlarmEvent]:
+        """Step the CUSUM's lifecycle, its verdict judged by the level condition while an episode is open.
+
+        While the condition holds the episode stays open (deadband); once it
+        was established and the feed has returned, the episode clears after
+        the off-delay, whatever the CUSUM says. Before the condition is
+        established the CUSUM's own verdict decides, but not within the
+        first ``current_readings`` readings of the episode (the current
+        level's median still holds readings from before the run).
+        """
+        life = self.lifecycles["cusum"]
+        was_open = life.is_active
+        if verdict is not None and was_open and self.level.tracking:
+            verdict = self._level_verdict(verdict)
+        events = life.step(verdict, when, inn, version)
+        if not was_open and life.is_active:
+            self.level.start(signal.run_steps if signal is not None else 0)
+            self._level_age = 0
+            self._return_step = None
+            self._level_onset = life.current.detail
+            self._show_level(life)
+        elif was_open and not life.is_active:
+            described = self.level.describe()
+            if described and events:
+                events[-1] = replace(events[-1], detail=f"{self._level_onset}; at clearing: {described}")
+            self._level_returned(when)
+        elif life.is_active:
+            self._show_level(life)
+        return events
+
+    def _level_verdict(self, verdict: Assessment) -> Assessment:
+        level = self.level
+        if level.holds():
+            self._return_step = None
+            return Assessment(None, False, verdict.abs_z)
+        if level.returned():
+            if self._return_step is None:
+                self._return_step = self._steps
+            return Assessment(None, True, verdict.abs_z)
+        if self._level_age < level.current_readings:
+            return Assessment(None, False, verdict.abs_z)
+        return verdict
+
+    def _show_level(self, life: AlarmLifecycle) -> None:
+        described = self.level.describe()
+        if described:
+            life.revise(f"{self._level_onset}; {described}")
+
+    def _level_returned(self, when: datetime) -> None:
+        """The level episode cleared: follow the return at once, then restart the CUSUM and the condition.
+
+        The model was re-anchored on the shifted level; when the feed came
+        back, the forecasts are moved back by the step estimated from the
+        innovations since the return began (:mod:`.level_shift`), if it is
+        beyond three standard errors and the CUSUM has not already followed
+        the return itself, so that the return does not open an episode of
+        its own.
+        """
+        if self._return_step is not None and self.level.established and self.config.reanchor:
+            # the return began about a median's length before the condition saw it
+            began = self._return_step - self.level.current_readings
+            if self._last_reanchor_step < began:  # the CUSUM has not followed the return itself
+                history = list(self._history)[-(self._steps - began):]
+                estimate = estimate_level_shift(self.stream.system, self.stream.cov, history)
+                if estimate is not None and abs(estimate.size) > 3.0 * estimate.std_error:
+                    self._reanchor(estimate.delta, estimate, when, "returned")
+                    self._settle = [] if self.config.settle_steps > 0 else None
+                    self._settle_prior_se = estimate.std_error
+        self._end_level_episode()
+
+    def _end_level_episode(self) -> None:
+        self.level.stop()
+        self._level_age = 0
+        self._return_step = None
+        self._level_onset = ""
+        self._unconfirmed = None
+        if self.cusum is not None:
+            self.cusum.reset()
+
     def _shock_offset(self, peek: Innovation) -> tuple[float, float]:
         """For a reading about to be insulated: how the next forecast would differ had it been absorbed.
 
@@ -453,6 +608,7 @@ class FeedMonitor:
             return
         self.stream.shift_level(delta)
         self.reanchors += 1
+        self._last_reanchor_step = self._steps
         self.last_reanchor = {"time": when.isoformat(), "stage": stage, "delta": delta,
                               "shift_estimate": estimate.size, "std_error": estimate.std_error}
         for rule in self.rules.values():
