@@ -398,7 +398,8 @@ class FeedLifecycle:
         self.next_refit_epoch_s = None if every is None else float(p.request.epoch_s[-1]) + every
         self.diagnostics.reset()
         if p.kind == "initial":
-            self.monitor = FeedMonitor(self.feed_id, stream, config, last_seen=p.last_seen)
+            self.monitor = FeedMonitor(self.feed_id, stream, config, last_seen=p.last_seen,
+                                       recent_readings=p.request.values)
             self.history = RingBuffer(self.settings.refit_window_points, p.request.values)
             self.window, self.window_valid = [], 0
             self.state = "watching"

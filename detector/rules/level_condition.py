@@ -145,6 +145,11 @@ class LevelCondition:
         """D*, the largest departure of the episode, signed (0 before it is established)."""
         return self._peak
 
+    @property
+    def capacity(self) -> int:
+        """Readings kept."""
+        return int(self._ring.size)
+
     def parameters(self) -> dict[str, Any]:
         return {"current_readings": self.current_readings, "before_readings": self.before_readings,
                 "return_fraction": self.return_fraction, "floor_sigmas": self.floor_sigmas}

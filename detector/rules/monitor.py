@@ -90,10 +90,14 @@ class FeedMonitor:
     config : MonitorConfig, optional
     last_seen : datetime, optional
         Time of the last known reading, where the ``stale`` clock starts.
+    recent_readings : array_like, optional
+        The readings before the first one to be processed (the training
+        window, NaN for missing slots): the level condition's first "level
+        before" comes from them.
     """
 
     def __init__(self, feed_id: str, stream: Any, config: MonitorConfig | None = None,
-                 last_seen: datetime | None = None) -> None:
+                 last_seen: datetime | None = None, recent_readings: Any = None) -> None:
         self.feed_id = feed_id
         self.stream = stream
         self.config = config or MonitorConfig()
@@ -161,6 +165,9 @@ class FeedMonitor:
         self._level_onset = ""  # the open CUSUM episode's detail at onset
         self._return_step: int | None = None  # the step at which the condition stopped holding
         self._last_reanchor_step = 0  # the step of the last re-anchoring
+        if recent_readings is not None:
+            for value in np.asarray(recent_readings, dtype=float).ravel()[-self.level.capacity:].tolist():
+                self.level.observe(value)
 
     # ---------------------------------------------------------------- public
     def process(self, value: float, timestamp: datetime) -> StepResult:
