@@ -453,8 +453,16 @@ class FeedMonitor:
         gap = self.stale.seen(timestamp)
         life = self.lifecycles["stale"]
         if life.is_active:
-            detail = None if last is None or timestamp <= last else self.stale.outage_detail(last, timestamp)
-            return [life.close(timestamp, detail=detail)]
+            if last is None or timestamp <= last:
+                return [life.close(timestamp)]
+            tick = self.stale.last_tick
+            if timestamp < life.current.start and tick is not None and tick > life.current.start:
+                # the clock saw the silence, but the readings of it arrive now, late: the outage was
+                # in delivery, and it lasted until this clock time
+                detail = (f"{self.stale.outage_detail(last, tick)}; the readings of the gap arrived late, "
+                          f"from {timestamp.isoformat()} on")
+                return [life.close(tick, detail=detail)]
+            return [life.close(timestamp, detail=self.stale.outage_detail(last, timestamp))]
         if gap is None:
             return []
         verdict, start = gap
