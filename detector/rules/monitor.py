@@ -166,7 +166,11 @@ class FeedMonitor:
         self._return_step: int | None = None  # the step at which the condition stopped holding
         self._last_reanchor_step = 0  # the step of the last re-anchoring
         if recent_readings is not None:
-            for value in np.asarray(recent_readings, dtype=float).ravel()[-self.level.capacity:].tolist():
+            recent = np.asarray(recent_readings, dtype=float).ravel()[-self.level.capacity:]
+            regression = getattr(stream, "regression", None)
+            if regression is not None and stream.step >= recent.size:
+                recent = recent - np.asarray(regression.offsets(stream.step - recent.size, recent.size), dtype=float)
+            for value in recent.tolist():
                 self.level.observe(value)
 
     # ---------------------------------------------------------------- public
@@ -211,7 +215,7 @@ class FeedMonitor:
             events += life.step(verdict, timestamp, None, version)
 
         if math.isfinite(value):
-            self.level.observe(value)
+            self.level.observe(value - self._calendar_part())
             if self.level.tracking:
                 self._level_age += 1
 
@@ -499,6 +503,17 @@ class FeedMonitor:
         elif life.is_active:
             self._show_level(life)
         return events
+
+    def _calendar_part(self) -> float:
+        """x_t' beta of the slot about to be scored (0 without calendar terms).
+
+        The level condition compares levels, not times of day: the readings
+        it keeps have the model's daily and weekly cycles taken out.
+        """
+        regression = getattr(self.stream, "regression", None)
+        if regression is None:
+            return 0.0
+        return float(regression.offsets(self.stream.step, 1)[0])
 
     def _level_verdict(self, verdict: Assessment) -> Assessment:
         level = self.level
