@@ -34,6 +34,21 @@ For each reading :meth:`FeedMonitor.process` does, in order:
    reported, but does not re-anchor: a wider spread, not a new level,
    explains it.
 
+6. **The level condition** (:class:`~.level_condition.LevelCondition`):
+   every finite in-range reading, less the model's calendar part x_t' beta,
+   is kept. When a CUSUM episode opens, the level before its run is frozen;
+   while the readings stay away from it the episode stays open (the CUSUM's
+   verdict becomes the deadband), and once the departure was established
+   and the readings have returned, it clears after the off-delay whatever
+   the CUSUM says; the return is followed by one re-anchoring (unless the
+   CUSUM already followed it) and the CUSUM restarts, so the return opens
+   nothing. Later signals inside the episode (a drift) make no new event;
+   the detail shows the level now against the level before.
+   :meth:`FeedMonitor.accept_level` closes the episode on an operator's word.
+7. **Stale**: a reading that ends a gap in reading time longer than the
+   limit is one outage, opened at the gap's start and closed at the
+   reading; a live outage closes at the next reading, its length in words.
+
 :meth:`FeedMonitor.process` returns a :class:`StepResult` (the events, the
 innovation, and whether the step re-anchored or left episodes open).
 :meth:`FeedMonitor.tick` drives the clock-based ``stale`` rule.
