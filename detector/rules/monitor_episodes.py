@@ -29,8 +29,12 @@ class LevelEpisodes:
 
         Closes the open CUSUM (level-shift) episode at ``when`` with the
         detail "accepted as the new normal by {by}: {note}" and stops the
-        level condition; the CUSUM restarts. The stream already forecasts
-        on the new level (it was re-anchored when the shift was confirmed).
+        level condition; the CUSUM restarts. The stream forecasts on the new
+        level: it was re-anchored when the shift was confirmed, and a part
+        it has not yet followed (a shift confirmed only once, or a drift
+        since the last re-anchoring) is estimated from the innovations since
+        then (:mod:`.level_shift`) and followed now when it is beyond three
+        standard errors.
 
         Returns
         -------
@@ -43,6 +47,14 @@ class LevelEpisodes:
         if life is None or not life.is_active:
             return []
         event = life.close(when, detail=f"accepted as the new normal by {by}: {note}")
+        # the episode's readings and the CUSUM run before them; the estimate searches for the step
+        steps = min(self._level_age + 2 * self.level.current_readings, self._steps - self._last_reanchor_step)
+        if self.config.reanchor and steps > 0:
+            estimate = estimate_level_shift(self.stream.system, self.stream.cov, list(self._history)[-steps:])
+            if estimate is not None and abs(estimate.size) > 3.0 * estimate.std_error:
+                self._reanchor(estimate.delta, estimate, when, "accepted")
+                self._settle = [] if self.config.settle_steps > 0 else None
+                self._settle_prior_se = estimate.std_error
         self._end_level_episode()
         return [event]
 
