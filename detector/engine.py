@@ -148,6 +148,23 @@ class Engine:
         out = self._take_queued()
         return out.extend(self._get(feed_id).install(fitted, model_version, reason, thresholds, request))
 
+    def accept_level(self, feed_id: str, at: datetime, by: str, note: str) -> EngineOutput:
+        """An operator accepts the feed's present level as its new normal.
+
+        Closes the feed's open level-shift (``cusum``) episode at ``at`` with
+        the detail "accepted as the new normal by {by}: {note}"; the level
+        condition is dropped and the CUSUM restarts.
+
+        Raises
+        ------
+        DataError
+            An unknown feed, a naive ``at``, or no open level-shift episode.
+        """
+        if not isinstance(at, datetime) or at.tzinfo is None:
+            raise DataError(f"Engine.accept_level needs a timezone-aware datetime, got {at!r}")
+        out = self._take_queued()
+        return out.extend(self._get(feed_id).accept_level(at, str(by), str(note)))
+
     def refit_failed(self, feed_id: str, error: str) -> EngineOutput:
         """Report that the pending fit failed (``str(FitError)``); the feed goes on as described in :mod:`.feed`."""
         out = self._take_queued()

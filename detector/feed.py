@@ -398,7 +398,8 @@ class FeedLifecycle:
         self.next_refit_epoch_s = None if every is None else float(p.request.epoch_s[-1]) + every
         self.diagnostics.reset()
         if p.kind == "initial":
-            self.monitor = FeedMonitor(self.feed_id, stream, config, last_seen=p.last_seen)
+            self.monitor = FeedMonitor(self.feed_id, stream, config, last_seen=p.last_seen,
+                                       recent_readings=p.request.values)
             self.history = RingBuffer(self.settings.refit_window_points, p.request.values)
             self.window, self.window_valid = [], 0
             self.state = "watching"
@@ -426,6 +427,12 @@ class FeedLifecycle:
             f"model version {model_version} ({self.model_label}) replaced version {old_version} ({old_label}): "
             f"{reason}; {len(p.buffer)} readings since the request replayed"))
         return out
+
+    def accept_level(self, at: datetime, by: str, note: str) -> EngineOutput:
+        """Close the open level-shift episode: the present level is the new normal (:meth:`FeedMonitor.accept_level`)."""
+        if self.monitor is None or not self.monitor.level_episode_open:
+            raise DataError(f"feed {self.feed_id!r} has no open level-shift episode to accept")
+        return EngineOutput(events=self.monitor.accept_level(at, by, note))
 
     def refit_failed(self, error: str) -> EngineOutput:
         p = self.pending

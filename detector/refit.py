@@ -51,6 +51,7 @@ import numpy as np
 from .durations import WEEK_S
 from .fitting import FittedModel, fit
 from .rules import AlarmLimits, budget_thresholds, sigma_thresholds
+from .rules.thresholds import with_training_readings
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 
@@ -125,20 +126,20 @@ def thresholds_from_config(fitted: FittedModel, values: np.ndarray, interval_s: 
     ----------
     fitted : FittedModel
     values : ndarray
-        The fitted window (NaN for missing slots); budget mode estimates
-        the flatline resolution from its readings.
+        The fitted window (NaN for missing slots); the flatline rule's
+        resolution and repeat habits are learnt from its readings.
     interval_s : float
     config : dict
         ``mode`` (``"budget"`` or ``"sigma"``), ``false_alarms_per_week``
         (budget mode), and optionally ``sigma_limits`` and ``budget_options``
         (:meth:`~leadline.detector.feed_settings.FeedSettings.thresholds_config`).
     """
+    values = np.asarray(values, dtype=float)  # missing slots stay NaN: they break runs of repeats
     if config.get("mode") == "sigma":
-        return sigma_thresholds(**config.get("sigma_limits", {}))
-    values = np.asarray(values, dtype=float)
+        return with_training_readings(sigma_thresholds(**config.get("sigma_limits", {})), values)
     return budget_thresholds(fitted.standardized_residuals, interval_s=interval_s,
                              false_alarms=config["false_alarms_per_week"], per_s=WEEK_S,
-                             values=values[np.isfinite(values)], **config.get("budget_options", {}))
+                             values=values, **config.get("budget_options", {}))
 
 
 def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[str, Any]]:

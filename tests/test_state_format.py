@@ -77,8 +77,13 @@ def test_a_checkpoint_of_the_first_layout_resumes_like_an_uninterrupted_run():
     resumed.restore(feed, (data / "checkpoint_first_layout.bin").read_bytes(), 1)
     out = drive(resumed, 601)
     assert "rule states restored" in out.state_changes[0].detail
+    # The recorded run cleared the level-shift episode of slot 900 at 15:32 while the step still ran
+    # (to slot 1100): an alarm now lasts as long as the readings stay away from the level before the
+    # episode, so that clearing is no longer expected; every other event is.
+    expected = [event for event in whole["events"] if not (event[0] == "cusum" and event[2] is not None)]
     assert [[ev.rule, ev.start.isoformat(), None if ev.end is None else ev.end.isoformat(), ev.severity]
-            for ev in out.events] == whole["events"]
+            for ev in out.events] == expected
+    assert out.events[-1].rule == "cusum" and out.events[-1].end is None
     assert out.events[0].rule == "spike" and out.events[0].start == t0 + timedelta(minutes=600)  # the saved episode
     z_whole = np.array([np.nan if z is None else z for z in whole["z_from_slot_601"]])
     z_resumed = np.array([inn.z for _, inn in out.innovations])

@@ -334,9 +334,10 @@ def build(section: Any, ctx: BuildContext) -> CusumRule:
 
 ENTRY = RuleEntry(
     name="cusum", kind="innovation", build=build,
-    # a drift makes the CUSUM confirm again every few steps after each
-    # re-anchoring; the off-delay keeps that inside one episode
-    lifecycle=LifecycleConfig(1, 1, 12),
+    # the monitor holds the episode open while the level condition holds
+    # (a drift or a standing shift), so the off-delay only has to ride out
+    # a few steps: a return clears within about 10 readings
+    lifecycle=LifecycleConfig(1, 1, 4),
     budget_share=0.35,
     limit_keys=(LimitKey("cusum_k", DEFAULT_K, low=0),
                 LimitKey("cusum_h", DEFAULT_H, low=0, low_open=True, modes=("sigma",)),

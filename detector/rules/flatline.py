@@ -63,7 +63,7 @@ from ..errors import RuleError
 from ..innovation import Innovation
 from .contract import BudgetContext, BuildContext, LimitKey, RuleBase, RuleEntry
 from .lifecycle import Assessment, LifecycleConfig
-from .repeat_habits import RepeatHabits
+from .repeat_habits import RepeatHabits, learn_repeat_habits
 
 #: Default run probability limit (sigma mode).
 DEFAULT_RUN_PROBABILITY_LIMIT = 1e-6
@@ -218,14 +218,37 @@ def sigma_limits(options: dict[str, Any]) -> dict[str, Any]:
 
 
 def budget_limits(ctx: BudgetContext, options: dict[str, Any]) -> dict[str, Any]:
-    """The limit is p_r itself; the training readings' quantization step is stored as the resolution."""
-    return {"run_probability_limit": ctx.rate * ctx.shares["flatline"],
-            "resolution": 0.0 if ctx.values is None else estimate_resolution(ctx.values)}
+    """The limit is p_r itself; the training readings' quantization step and repeat habits are stored too."""
+    return {"run_probability_limit": ctx.rate * ctx.shares["flatline"], **training_facts(ctx.values)}
+
+
+def training_facts(values: Any) -> dict[str, Any]:
+    """What the flatline section stores of the training readings: their resolution and repeat habits.
+
+    ``habits`` is the JSON form of :class:`~.repeat_habits.RepeatHabits`
+    (its own format version); limits stored before it existed lack the key
+    and build a rule without habits. Empty when ``values`` is None.
+    """
+    if values is None:
+        return {}
+    import numpy as np
+
+    y = np.asarray(values, dtype=float).ravel()
+    return {"resolution": estimate_resolution(y), "habits": learn_repeat_habits(y).to_json()}
+
+
+def habits_of(section: Any) -> RepeatHabits | None:
+    """The repeat habits stored in a flatline section, or None (limits stored before habits were learnt)."""
+    stored = section.get("habits") if section is not None else None
+    if stored is None:
+        return None
+    return RepeatHabits.from_json(stored.to_json() if hasattr(stored, "to_json") else dict(stored))
 
 
 def build(section: Any, ctx: BuildContext) -> FlatlineRule:
     resolution = max(ctx.config.flatline_resolution, float(section.get("resolution", 0.0)))
-    return FlatlineRule(ctx.config.flatline_tolerance, resolution, section["run_probability_limit"])
+    return FlatlineRule(ctx.config.flatline_tolerance, resolution, section["run_probability_limit"],
+                        habits=habits_of(section))
 
 
 ENTRY = RuleEntry(

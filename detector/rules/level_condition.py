@@ -40,11 +40,13 @@ episode and
 
 .. math::
 
-    |D_t| > r\\,|D^*|
+    |D_t| > r\\,|D^*| \\quad\\text{or}\\quad |D_t| > \\max\\big(c\\, \\hat\\sigma_0 \\sqrt{1/m + 1/n},\\; q\\big)
 
 with r = ``return_fraction``: the feed has not come back more than (1 - r)
-of the way. (The floor only decides whether a departure is established:
-once it is, the deadband alone decides when the feed is back.) The fraction is a deadband in reading units, the usual guard
+of the way, or it still sits beyond the noise floor. (The largest departure
+D* of an autocorrelated feed is itself a noisy maximum, so r |D*| alone can
+lie inside the feed's own wandering around the new level; the floor keeps
+such a wander from passing for a return.) The fraction is a deadband in reading units, the usual guard
 against an alarm chattering around its clear point (ANSI/ISA-18.2-2016,
 alarm deadband) [common practice]. c = 3 and r = 0.4 are common practice,
 not published values; the sqrt(1/m + 1/n) factor is the standard error of a
@@ -143,6 +145,11 @@ class LevelCondition:
         """D*, the largest departure of the episode, signed (0 before it is established)."""
         return self._peak
 
+    @property
+    def capacity(self) -> int:
+        """Readings kept."""
+        return int(self._ring.size)
+
     def parameters(self) -> dict[str, Any]:
         return {"current_readings": self.current_readings, "before_readings": self.before_readings,
                 "return_fraction": self.return_fraction, "floor_sigmas": self.floor_sigmas}
@@ -183,7 +190,7 @@ class LevelCondition:
         d = self._departure
         if not math.isfinite(d) or d * self._peak <= 0:
             return False
-        return abs(d) > self.return_fraction * abs(self._peak)
+        return abs(d) > self.return_fraction * abs(self._peak) or abs(d) > self._floor
 
     def returned(self) -> bool:
         """The condition was established and the feed has come back (the alarm may clear now)."""

@@ -240,6 +240,18 @@ class AlarmLifecycle:
         self._window.clear()
         return event
 
+    def revise(self, detail: str) -> None:
+        """Replace the open episode's detail (what it shows while open); nothing is emitted.
+
+        Raises
+        ------
+        RuleError
+            When no episode is open.
+        """
+        if self._event is None:
+            raise RuleError(f"rule {self.rule!r} on {self.feed_id!r}: no open episode to revise")
+        self._event = replace(self._event, detail=detail)
+
     def open_now(self, assessment: Assessment, when: datetime, innovation: Innovation | None = None,
                  model_version: int | None = None) -> AlarmEvent | None:
         """Open an episode at once, bypassing the on-delay (clock-driven rules).

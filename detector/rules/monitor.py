@@ -34,6 +34,21 @@ For each reading :meth:`FeedMonitor.process` does, in order:
    reported, but does not re-anchor: a wider spread, not a new level,
    explains it.
 
+6. **The level condition** (:class:`~.level_condition.LevelCondition`):
+   every finite in-range reading, less the model's calendar part x_t' beta,
+   is kept. When a CUSUM episode opens, the level before its run is frozen;
+   while the readings stay away from it the episode stays open (the CUSUM's
+   verdict becomes the deadband), and once the departure was established
+   and the readings have returned, it clears after the off-delay whatever
+   the CUSUM says; the return is followed by one re-anchoring (unless the
+   CUSUM already followed it) and the CUSUM restarts, so the return opens
+   nothing. Later signals inside the episode (a drift) make no new event;
+   the detail shows the level now against the level before.
+   :meth:`FeedMonitor.accept_level` closes the episode on an operator's word.
+7. **Stale**: a reading that ends a gap in reading time longer than the
+   limit is one outage, opened at the gap's start and closed at the
+   reading; a live outage closes at the next reading, its length in words.
+
 :meth:`FeedMonitor.process` returns a :class:`StepResult` (the events, the
 innovation, and whether the step re-anchored or left episodes open).
 :meth:`FeedMonitor.tick` drives the clock-based ``stale`` rule.
@@ -63,10 +78,12 @@ from ..events import AlarmEvent
 from ..innovation import Innovation
 from . import registry
 from .contract import BuildContext, check_state, innovation_from_json, innovation_to_json
+from .level_condition import LevelCondition
 from .level_shift import estimate_level_shift
 from .lifecycle import AlarmLifecycle
 from .limits import AlarmLimits
 from .monitor_config import MonitorConfig, StepResult
+from .monitor_episodes import LevelEpisodes
 
 
 __all__ = ["FeedMonitor", "MonitorConfig", "StepResult", "INNOVATION_RULES", "HISTORY_STEPS"]
@@ -77,7 +94,7 @@ INNOVATION_RULES = registry.rule_names("innovation")
 HISTORY_STEPS = 1024
 
 
-class FeedMonitor:
+class FeedMonitor(LevelEpisodes):
     """All rules of one feed, fed one reading at a time.
 
     Parameters
@@ -89,10 +106,14 @@ class FeedMonitor:
     config : MonitorConfig, optional
     last_seen : datetime, optional
         Time of the last known reading, where the ``stale`` clock starts.
+    recent_readings : array_like, optional
+        The readings before the first one to be processed (the training
+        window, NaN for missing slots): the level condition's first "level
+        before" comes from them.
     """
 
     def __init__(self, feed_id: str, stream: Any, config: MonitorConfig | None = None,
-                 last_seen: datetime | None = None) -> None:
+                 last_seen: datetime | None = None, recent_readings: Any = None) -> None:
         self.feed_id = feed_id
         self.stream = stream
         self.config = config or MonitorConfig()
@@ -153,6 +174,20 @@ class FeedMonitor:
         # (direction, first step, signals) of CUSUM signals not yet confirmed
         self._unconfirmed: tuple[int, int, int] | None = None
         self.last_reanchor: dict[str, Any] | None = None
+        #: The departure of the readings' level from the level before the open CUSUM episode.
+        flat = self.rules.get("flatline")
+        self.level = LevelCondition(resolution=float(getattr(flat, "resolution", self.config.flatline_resolution)))
+        self._level_age = 0  # readings kept since the condition started
+        self._level_onset = ""  # the open CUSUM episode's detail at onset
+        self._return_step: int | None = None  # the step at which the condition stopped holding
+        self._last_reanchor_step = 0  # the step of the last re-anchoring
+        if recent_readings is not None:
+            recent = np.asarray(recent_readings, dtype=float).ravel()[-self.level.capacity:]
+            regression = getattr(stream, "regression", None)
+            if regression is not None and stream.step >= recent.size:
+                recent = recent - np.asarray(regression.offsets(stream.step - recent.size, recent.size), dtype=float)
+            for value in recent.tolist():
+                self.level.observe(value)
 
     # ---------------------------------------------------------------- public
     def process(self, value: float, timestamp: datetime) -> StepResult:
@@ -178,10 +213,7 @@ class FeedMonitor:
         version = self.stream.model_version
         events: list[AlarmEvent] = []
         if not math.isnan(value) and self.stale is not None:
-            self.stale.seen(timestamp)
-            life = self.lifecycles["stale"]
-            if life.is_active:
-                events.append(life.close(timestamp))
+            events += self._stale_seen(timestamp, version)
 
         if self.range is not None and not math.isnan(value):
             verdict = self.range.assess(value)
@@ -197,6 +229,11 @@ class FeedMonitor:
                         rule.skip_slot()
                 return events
             events += life.step(verdict, timestamp, None, version)
+
+        if math.isfinite(value):
+            self.level.observe(value - self._calendar_part())
+            if self.level.tracking:
+                self._level_age += 1
 
         absorb = True
         shock = None
@@ -240,6 +277,8 @@ class FeedMonitor:
             verdict = rule.assess(inn)
             if rule is self.cusum:
                 signal = rule.last_signal
+                events += self._cusum_step(verdict, signal, timestamp, inn, version)
+                continue
             if rule is self.noise_burst and verdict is not None and verdict.severity is not None:
                 burst_now = True
             events += self.lifecycles[rule.name].step(verdict, timestamp, inn, version)
@@ -293,6 +332,9 @@ class FeedMonitor:
         """
         if old.stale is not None and self.stale is not None:
             self.stale.last_seen = old.stale.last_seen
+        # the readings' level and the level before an open episode do not depend on the model
+        self.level.load_state(old.level.state_dict())
+        self._level_age, self._level_onset, self._return_step = old._level_age, old._level_onset, None
         closed = []
         for name, life in old.lifecycles.items():
             if not life.is_active:
@@ -320,8 +362,9 @@ class FeedMonitor:
                 "model_version": self.stream.model_version, "rules": rules}
 
     # ----------------------------------------------------------------- state
-    #: Layout version of :meth:`state_dict`.
-    STATE_VERSION = 1
+    #: Layout version of :meth:`state_dict` (2: the level condition added; a version 1 state loads
+    #: with the condition tracking nothing, its recent readings empty).
+    STATE_VERSION = 2
 
     def state_dict(self) -> dict[str, Any]:
         """The running state of the monitor, its rules and their lifecycles, as plain JSON values.
@@ -342,6 +385,8 @@ class FeedMonitor:
             "unconfirmed": None if self._unconfirmed is None else list(self._unconfirmed),
             "rules": {name: rule.state_dict() for name, rule in self.rules.items()},
             "lifecycles": {name: life.state_dict() for name, life in self.lifecycles.items()},
+            "level": {"condition": self.level.state_dict(), "age": self._level_age, "onset_detail": self._level_onset,
+                      "return_step": self._return_step, "last_reanchor_step": self._last_reanchor_step},
         }
 
     def load_state(self, state: Any) -> None:
@@ -352,7 +397,12 @@ class FeedMonitor:
         StateFormatError
             An unknown version, or rules that differ from this monitor's.
         """
-        state = check_state(state, f"monitor of feed {self.feed_id!r}", self.STATE_VERSION)
+        owner = f"monitor of feed {self.feed_id!r}"
+        if isinstance(state, dict) and state.get("v") == 1:
+            state = {**state, "v": self.STATE_VERSION, "level": None}
+        state = check_state(state, owner, self.STATE_VERSION)
+        if "level" not in state:
+            raise StateFormatError(f"{owner}: saved state of version {self.STATE_VERSION} lacks 'level'")
         for part, mine in (("rules", self.rules), ("lifecycles", self.lifecycles)):
             if set(state[part]) != set(mine):
                 raise StateFormatError(f"saved monitor state holds {part} {sorted(state[part])}, "
@@ -377,6 +427,16 @@ class FeedMonitor:
             rule.load_state(state["rules"][name])
         for name, life in self.lifecycles.items():
             life.load_state(state["lifecycles"][name])
+        level = state["level"]
+        self.level.reset()
+        self._level_age, self._level_onset, self._return_step = 0, "", None
+        self._last_reanchor_step = 0
+        if level is not None:
+            self.level.load_state(level["condition"])
+            self._level_age = int(level["age"])
+            self._level_onset = str(level["onset_detail"])
+            self._return_step = None if level["return_step"] is None else int(level["return_step"])
+            self._last_reanchor_step = int(level["last_reanchor_step"])
 
     # ------------------------------------------------------------- internals
     def _shock_offset(self, peek: Innovation) -> tuple[float, float]:
@@ -453,6 +513,7 @@ class FeedMonitor:
             return
         self.stream.shift_level(delta)
         self.reanchors += 1
+        self._last_reanchor_step = self._steps
         self.last_reanchor = {"time": when.isoformat(), "stage": stage, "delta": delta,
                               "shift_estimate": estimate.size, "std_error": estimate.std_error}
         for rule in self.rules.values():

@@ -60,8 +60,10 @@ quantile and Q_E the same tail quantile over windows of w winsorized
 residuals drawn at random from the training residuals (:mod:`.noise_burst`).
 
 *Flatline.* The run probability limit is p_r itself (see :mod:`.flatline`
-for why this bounds the rate); the readings' quantization step, estimated
-from the training readings when given, is stored as its resolution.
+for why this bounds the rate); the readings' quantization step and the
+feed's repeat habits (:mod:`.repeat_habits`), learnt from the training
+readings when given, are stored in its section (``resolution``,
+``habits``); :func:`with_training_readings` adds them to sigma-mode limits.
 """
 
 from __future__ import annotations
@@ -185,6 +187,22 @@ def sigma_thresholds(**options: Any) -> AlarmLimits:
     return AlarmLimits.from_json(out)
 
 
+def with_training_readings(limits: AlarmLimits, values: np.ndarray | None) -> AlarmLimits:
+    """``limits`` with the flatline section's resolution and repeat habits learnt from ``values``.
+
+    For sigma-mode limits, whose builders see no training readings
+    (:func:`budget_thresholds` learns them itself). Returns ``limits``
+    unchanged when ``values`` is None or there is no flatline section.
+    """
+    if values is None or limits.get("flatline") is None:
+        return limits
+    from .flatline import training_facts
+
+    data = limits.to_json()
+    data["flatline"] = {**data["flatline"], **training_facts(values)}
+    return AlarmLimits.from_json(data)
+
+
 def _signature(fixed: list[inspect.Parameter], mode: str, ret: Any) -> inspect.Signature:
     taken = {p.name for p in fixed}
     keys = [inspect.Parameter(key.name, inspect.Parameter.KEYWORD_ONLY, default=key.default)
@@ -211,4 +229,4 @@ def validate_thresholds(data: Any) -> AlarmLimits:
 
 __all__ = ["DAY_S", "DEFAULT_SHARES", "MIN_RESIDUALS", "default_shares", "MIN_TAIL_POINTS", "WEEK_S", "AlarmLimits",
            "budget_thresholds", "empirical_abs_limit", "empirical_cusum_h", "gaussian_abs_limit",
-           "noise_limit_scale", "per_point_rate", "sigma_thresholds", "validate_thresholds"]
+           "noise_limit_scale", "per_point_rate", "sigma_thresholds", "validate_thresholds", "with_training_readings"]
