@@ -39,6 +39,8 @@ from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from typing import Any, Sequence
 
+from leadline.detector.durations import human_duration  # the one duration formatter of the package
+
 from ..store.connect import read_transaction
 from ..store.records import ModelRecord, Note, StoredEvent
 from ..store.shift_queries import active_at
@@ -57,21 +59,6 @@ RATE_BIN = timedelta(minutes=10)
 def plural(n: int, word: str, many: str | None = None) -> str:
     """``1 alarm``, ``2 alarms``, ``0 alarms`` (``many`` for irregular plurals)."""
     return f"{n:,} {word if n == 1 else (many or word + 's')}"
-
-
-def human_duration(seconds: float) -> str:
-    """``45 s``, ``17 min``, ``2 h 5 min``, ``3 d 0 h 17 min`` (rounded down to the minute)."""
-    s = max(0, int(seconds))
-    if s < 60:
-        return f"{s} s"
-    minutes = s // 60
-    d, rest = divmod(minutes, 1440)
-    h, m = divmod(rest, 60)
-    if d:
-        return f"{d} d {h} h {m} min"
-    if h:
-        return f"{h} h {m} min"
-    return f"{m} min"
 
 
 @dataclass(frozen=True)

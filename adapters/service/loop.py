@@ -29,7 +29,13 @@ One :class:`Service` owns the running parts and does, until it is asked to stop:
    commit;
 9. tell systemd (``Type=notify``, :mod:`.sd_notify`): READY=1 once the
    sources are started, WATCHDOG=1 from the loop, the summary as STATUS=,
-   STOPPING=1 at shutdown.
+   STOPPING=1 at shutdown;
+10. stage, with each commit, the status of every feed that changed since the
+    last one (state, last reading, source, learning progress) and, every
+    ``heartbeat_interval_s``, a heartbeat (start time, beat, pid, version),
+    which ``leadline status`` reads;
+11. publish no event of a shelved feed (it is stored all the same): the
+    shelving notes are read from the store every ``shelving_refresh_s``.
 
 :meth:`Service.request_stop` (wired to SIGTERM and SIGINT by ``leadline run``)
 stops the sources, drains what they still hold, flushes events and
@@ -61,7 +67,7 @@ from leadline.detector.events import AlarmEvent
 from leadline.detector.evidence import EvidenceRecorder
 from leadline.detector.readings import Reading
 
-from ..ports import AlarmPublisher, EventSink, Source
+from ..ports import AlarmPublisher, EventSink, FeedStatusRow, Heartbeat, Source
 
 if TYPE_CHECKING:
     from leadline.detector.engine import Engine
@@ -74,6 +80,15 @@ logger = logging.getLogger("leadline.service")
 
 def _utc_now() -> datetime:
     return datetime.now(timezone.utc)
+
+
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("leadline")
+    except PackageNotFoundError:
+        return "unknown"
 
 
 def log_fields(message: str, **fields: Any) -> str:
@@ -120,6 +135,13 @@ class Service:
         The link to systemd; None sends nothing.
     reject_log_interval_s : float
         At most one reject log line per source and reason this often.
+    heartbeat_interval_s : float
+        How often the service's heartbeat is staged (``leadline status``
+        takes a service as stopped after a few missed beats).
+    shelving_refresh_s : float
+        How often the shelved feeds are read again from the store.
+    service_name : str
+        The key of this service's heartbeat row.
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -129,7 +151,8 @@ class Service:
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
                  clock: Callable[[], datetime] | str = _utc_now, store_retry_base_s: float = 1.0,
                  store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
-                 reject_log_interval_s: float = 60.0) -> None:
+                 reject_log_interval_s: float = 60.0, heartbeat_interval_s: float = 5.0,
+                 shelving_refresh_s: float = 5.0, service_name: str = "leadline") -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -170,6 +193,18 @@ class Service:
         self._pending_readings = 0
         self.notifier = notifier
         self.reject_summary = RejectSummary(reject_log_interval_s)
+        self.heartbeat_interval_s = float(heartbeat_interval_s)
+        self.shelving_refresh_s = float(shelving_refresh_s)
+        self.service_name = service_name
+        self.started_at = _utc_now()
+        self._last_beat = float("-inf")
+        self._last_shelving_read = float("-inf")
+        self._shelved: dict[str, datetime] = {}
+        self._changed_feeds: set[str] = set()
+        #: The source name and the unit each feed was last seen with.
+        self.feed_sources: dict[str, str] = {}
+        self.feed_units: dict[str, str] = {}
+        self.events_withheld = 0
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -251,6 +286,8 @@ class Service:
     def _process(self, source: Source, readings: list[Reading]) -> None:
         for reading in readings:
             self._handle(self.engine.process(reading), reading)
+            self._changed_feeds.add(reading.feed_id)
+            self.feed_sources[reading.feed_id] = source.name
             if self._latest_reading is None or reading.timestamp > self._latest_reading:
                 self._latest_reading = reading.timestamp
         for mark in source.durable_marks(readings):
@@ -272,6 +309,7 @@ class Service:
                                    peak_abs_z=event.peak_abs_z, model_version=event.model_version,
                                    detail=event.detail))
         for change in out.state_changes:
+            self._changed_feeds.add(change.feed_id)
             logger.info(log_fields("feed state", feed=change.feed_id, old=change.old, new=change.new,
                                    detail=change.detail))
         for request in out.refit_requests:
@@ -334,8 +372,41 @@ class Service:
         if now - self._last_summary >= self.summary_interval_s:
             self._summary(now)
         self.reject_summary.tick()
+        if now - self._last_beat >= self.heartbeat_interval_s:
+            self._last_beat = now
+            self.store.stage_heartbeat(Heartbeat(self.service_name, self.started_at, _utc_now(),
+                                                 self.heartbeat_interval_s, os.getpid(), _version()))
         if self.notifier is not None:
             self.notifier.heartbeat()
+
+    def _stage_feed_status(self) -> None:
+        """Stage the status of every feed that changed since the last commit (only those)."""
+        changed, self._changed_feeds = self._changed_feeds, set()
+        for feed_id in sorted(changed):
+            try:
+                st = self.engine.feed_status(feed_id)
+            except LeadlineError:
+                continue
+            learning = st.get("learning") or {}
+            last = st.get("last_reading_time")
+            self.store.stage_feed_status(FeedStatusRow(
+                feed_id=feed_id, state=st["state"],
+                last_reading_at=datetime.fromisoformat(last) if last else None,
+                last_value=st.get("last_value"), source=self.feed_sources.get(feed_id),
+                unit=self.feed_units.get(feed_id), interval_s=st.get("interval_s"),
+                learning_have=learning.get("readings"), learning_need=learning.get("train_points")))
+
+    def shelved(self, feed_id: str) -> bool:
+        """Whether ``feed_id`` is shelved now (the store's notes, read at most every ``shelving_refresh_s``)."""
+        mono = time.monotonic()
+        if mono - self._last_shelving_read >= self.shelving_refresh_s:
+            self._last_shelving_read = mono
+            try:
+                self._shelved = self.store.shelving_in_force(_utc_now())
+            except StoreError as exc:  # keep the last known shelving while the store is away
+                logger.warning(log_fields("shelving not read; the last known is kept", error=str(exc)))
+        until = self._shelved.get(feed_id)
+        return until is not None and until > _utc_now()
 
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
@@ -352,6 +423,7 @@ class Service:
         backoff = self.store_backoff
         if not (force or backoff.ready()):
             return
+        self._stage_feed_status()
         try:
             self.store.flush()
         except StoreError as exc:
@@ -372,6 +444,10 @@ class Service:
         if self.publisher is not None and events:
             try:
                 for event in events:
+                    if self.shelved(event.feed_id):
+                        self.events_withheld += 1  # recorded, not published (ISA-18.2 shelving)
+                        logger.debug(log_fields("not published: feed shelved", feed=event.feed_id, rule=event.rule))
+                        continue
                     self.publisher.publish(event)
             except LeadlineError as exc:
                 logger.warning(log_fields("alarm publishing failed", error=str(exc), events=len(events)))

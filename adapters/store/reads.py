@@ -21,6 +21,7 @@ from leadline.detector.evidence import EvidenceRecord
 
 from . import queries, schema
 from .evidence import read_evidence
+from .feed_status import FeedStatusRow, Heartbeat, read_feed_status, read_heartbeats
 from .connect import write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
@@ -173,6 +174,14 @@ class EventQueries(StoreHandle):
 
     def feeds(self) -> list[Feed]:
         return self._read("listing feeds", queries.feeds)
+
+    def feed_status(self) -> dict[str, FeedStatusRow]:
+        """Each feed's status as the service last committed it, by feed id."""
+        return self._read("reading feed status", read_feed_status)
+
+    def heartbeats(self) -> list[Heartbeat]:
+        """The heartbeat of every service that wrote to this store, latest beat first."""
+        return self._read("reading service heartbeats", read_heartbeats)
 
     def latest_models(self) -> dict[str, ModelRecord]:
         """The latest model record of each feed."""
