@@ -295,7 +295,8 @@ def test_json_format(site, capsys):
     document = json.loads(capsys.readouterr().out)
     assert list(document)[-1] == "caution" and document["caution"] == CAUTION
     assert document["count"] == 2 and document["filters"] == {"feed": "marrowby/flow/*", "rule": None,
-                                                              "severity": None, "unacked": False}
+                                                              "severity": None, "unacked": False,
+                                                              "include_shelved": False}
     assert document["window"]["since"] == "2026-03-13T09:30:00+00:00" and document["window"]["until"] is None
     cusum, spike = document["events"]
     assert cusum["id"] == site.ids["night_cusum"] and cusum["model_version"] == 1
@@ -538,6 +539,10 @@ def test_until_before_since_is_refused(site, capsys):
     assert "is not after --since" in capsys.readouterr().err
 
 
-def test_show_age():
+def test_show_age_is_the_one_duration_formatter():
+    from leadline.adapters.report import figures
+    from leadline.detector.durations import human_duration
+
+    assert figures.human_duration is human_duration
     assert [review.show_age(s) for s in (5, 125, 3600, 3 * 3600 + 20 * 60, 86400, 2 * 86400 + 4 * 3600)] == [
-        "5s", "2min", "1h", "3h 20min", "1d", "2d 4h"]
+        "5 s", "2 min", "1 h 0 min", "3 h 20 min", "1 d 0 h 0 min", "2 d 4 h 0 min"]

@@ -29,6 +29,7 @@ from leadline.detector.events import CAUTION
 from . import review
 from .review import Review, Window, add_store_options, add_window_options, open_review, show_time
 from .summary import resolve_report_window, window_title
+from .shelving import add_include_option
 from ..report.figures import (FLOOD_ALARMS, REPEAT_MIN, RATE_BIN, Incident, ShiftData, human_duration, load_figures,
                             model_in_words, plural, reference_rows)
 
@@ -203,7 +204,7 @@ def run_report(args, out: TextIO | None = None) -> int:
     now = review.utc_now()
     with open_review(args) as rv:
         window = resolve_report_window(args, rv, now)
-        data = load_figures(rv.store, window.since, window.until)
+        data = load_figures(rv.store, window.since, window.until, include_shelved=args.include_shelved)
         keys = [s.event.key for inc in data.incidents[:MAX_PANELS] for s in inc.events]
         evidence = rv.store.evidence(keys)
         html = render_report(data, window, rv, evidence, now)
@@ -225,5 +226,6 @@ def add_parser(subparsers) -> None:
                     "with its readings, forecast and notes. Needs the leadline[report] extra. Alarms are advisory.")
     add_store_options(p)
     add_window_options(p, None)
+    add_include_option(p)
     p.add_argument("--out", metavar="FILE", help="the HTML file to write (default: leadline-report-<shift>.html)")
     p.set_defaults(handler=run_report)

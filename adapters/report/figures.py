@@ -342,14 +342,28 @@ class ShiftData:
     models: dict[tuple[str, int | None], ModelRecord | None]
     units: dict[str, str | None]
     store_url: str
+    #: Events of the window left out as events of shelved feeds (0 with ``include_shelved``).
+    shelved_hidden: int = 0
 
 
-def load_figures(store: Any, since: datetime, until: datetime) -> ShiftData:
-    """Read the window's events and what the figures need from ``store``."""
+def load_figures(store: Any, since: datetime, until: datetime, include_shelved: bool = False) -> ShiftData:
+    """Read the window's events and what the figures need from ``store``.
+
+    The events of shelved feeds (started while their feed was shelved) are
+    left out unless ``include_shelved``; ``ShiftData.shelved_hidden`` counts them.
+    """
+    from ..cli.shelving import split_shelved
+
     events = store.events(since=since, until=until)
     with read_transaction(store.engine, "reading standing events") as conn:
         standing = active_at(conn, until, STANDING_H)
         stale_active = active_at(conn, until, 0.0, rule="stale")
+    hidden = 0
+    if not include_shelved:
+        notes = store.shelving_notes()
+        events, hidden = split_shelved(events, notes)
+        standing, _ = split_shelved(standing, notes)
+        stale_active, _ = split_shelved(stale_active, notes)
     figures = compute_figures(events, since, until, standing, store.shelved_feeds(until), stale_active)
     incidents = group_incidents(figures.events, until)
     models: dict[tuple[str, int | None], ModelRecord | None] = {}
@@ -364,4 +378,4 @@ def load_figures(store: Any, since: datetime, until: datetime) -> ShiftData:
                 v = s.event.model_version
                 models[(feed_id, v)] = by_version.get(v, latest) if v is not None else latest
     units = {f.feed_id: f.unit for f in store.feeds()}
-    return ShiftData(figures, incidents, models, units, store.url)
+    return ShiftData(figures, incidents, models, units, store.url, hidden)

@@ -161,6 +161,10 @@ class EventQueries(StoreHandle):
         """The shelving note in force of every feed shelved at ``now``."""
         return self._read("listing shelved feeds", queries.shelved_feeds, _require_utc("now", now))
 
+    def shelving_notes(self) -> list[Note]:
+        """Every shelving note ever written, by feed, then time (the audit trail of shelving)."""
+        return self._read("reading shelving notes", queries.shelving_notes)
+
     def reject_counts(self) -> list[RejectCount]:
         return self._read("reading reject counts", queries.reject_counts)
 
