@@ -272,10 +272,10 @@ def test_dst_shift_through_the_command(tmp_path, monkeypatch, capsys):
 # ------------------------------------------------------------------------------ formats
 def test_csv_format(site, capsys):
     assert site.run("events", "--format", "csv") == 0
-    out = capsys.readouterr().out
-    body, last = out.rstrip("\n").rsplit("\n", 1)
-    assert last == "# " + CAUTION
+    body = capsys.readouterr().out
+    assert not body.startswith("\ufeff") and "\n#" not in body  # no trailer: every line is a record
     rows = list(csv.DictReader(io.StringIO(body)))
+    assert all(r["caution"] == CAUTION for r in rows)
     assert tuple(rows[0]) == CSV_COLUMNS
     assert [int(r["id"]) for r in rows] == [site.ids[n] for n in ("earlier_spike", "night_cusum", "night_spike",
                                                                   "day_flatline")]
@@ -492,10 +492,9 @@ def test_export_with_notes(site, capsys, tmp_path):
         ("ack", "R. Okonkwo", "valve closed"), ("comment", "T. Hale", "repair booked")]
 
     assert site.run("export", "--shift", "last") == 0  # CSV by default
-    text = capsys.readouterr().out
-    body, last = text.rstrip("\n").rsplit("\n", 1)
-    assert last == "# " + CAUTION
+    body = capsys.readouterr().out
     rows = list(csv.DictReader(io.StringIO(body)))
+    assert rows[-1]["caution"] == CAUTION
     assert [int(r["id"]) for r in rows] == [site.ids["night_cusum"], site.ids["night_spike"]]
     assert rows[0]["acknowledged_by"] == "R. Okonkwo" and rows[0]["acknowledged_at"] == "2026-03-14T09:30:00+00:00"
     assert rows[0]["notes"].splitlines() == ["2026-03-14T09:30:00+00:00 ack by R. Okonkwo: valve closed",

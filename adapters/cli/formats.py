@@ -3,10 +3,13 @@
 Every format ends with the caution (:data:`~leadline.detector.events.CAUTION`):
 
 * **table**: the last line of the output;
-* **CSV**: each row has a ``caution`` column, and the last line is the
-  caution as a comment, ``# Advisory only: ...``; read the file with a CSV
-  reader that skips lines starting with ``#`` (each row's own fields never
-  start a line with ``#``: the first column is the numeric event id);
+* **CSV**: UTF-8 (a byte order mark first with ``export --bom``, for
+  spreadsheets that guess the encoding otherwise), a header row, then one
+  row per event; the caution is the last column of every row, and there is
+  no trailer line, so every line after the header is a record and a
+  spreadsheet opens the file without a stray row;
+* **xlsx** (``export --format xlsx``, :mod:`.spreadsheet`): real date cells,
+  a frozen header row, the caution on a sheet of its own;
 * **JSON**: one object ``{"window": ..., "filters": ..., "count": n,
   "events": [...], "caution": "..."}``, the caution as its last member and
   in each event. Events that were never stored (``leadline score
@@ -120,7 +123,10 @@ def _cell(x: float | None) -> str:
     return "" if x is None else repr(x)
 
 
-def write_csv(events: Iterable[StoredEvent], out: TextIO) -> int:
+def write_csv(events: Iterable[StoredEvent], out: TextIO, bom: bool = False) -> int:
+    """The events as CSV (module notes); ``bom`` writes U+FEFF first."""
+    if bom:
+        out.write("\ufeff")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     n = 0
@@ -138,7 +144,6 @@ def write_csv(events: Iterable[StoredEvent], out: TextIO) -> int:
             json.dumps(r["parameters"], sort_keys=True), r["created_at"], r["updated_at"], r["caution"],
         ])
         n += 1
-    print_caution(out, prefix="# ")
     return n
 
 
