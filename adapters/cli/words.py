@@ -59,23 +59,17 @@ def value_word(counter: bool) -> str:
     return "interval delta" if counter else "reading"
 
 
-def rollover_words(detail: Any) -> str:
-    """A counter rollover or meter reset in words, from the dict the engine records.
+def counter_words(counts: Any) -> str:
+    """What a counter feed's register did, in words, from its status counts.
 
-    >>> rollover_words({"previous": 99990, "current": 12, "register_max": 100000, "delta": 22})
-    'register rolled over from 99990 to 12 (register size 100000); interval delta 22'
+    >>> counter_words({"delta": 190, "rollover": 1, "reset": 0, "meter_resets": 0})
+    '190 interval deltas, 1 register rollover (handled, not an alarm), no meter reset'
     """
-    if not isinstance(detail, dict):
-        return str(detail)
-    prev, cur = detail.get("previous"), detail.get("current")
-    size = detail.get("register_max", detail.get("register_size"))
-    parts = []
-    if prev is not None and cur is not None:
-        parts.append(f"register rolled over from {show_value(prev)} to {show_value(cur)}"
-                     + (f" (register size {show_value(size)})" if size is not None else ""))
-    if detail.get("delta") is not None:
-        parts.append(f"interval delta {show_value(detail['delta'])}")
-    rest = {k: v for k, v in detail.items() if k not in {"previous", "current", "register_max", "register_size",
-                                                         "delta"}}
-    parts.extend(f"{k.replace('_', ' ')} {show_value(v) if isinstance(v, float) else v}" for k, v in rest.items())
-    return "; ".join(parts) or "counter event"
+    if not isinstance(counts, dict):
+        return str(counts)
+    deltas, rolls = int(counts.get("delta", 0)), int(counts.get("rollover", 0))
+    resets = int(counts.get("meter_resets", counts.get("reset", 0)))
+    parts = [plural(deltas, "interval delta"), plural(rolls, "register rollover") + (
+        " (handled, not an alarm)" if rolls else "")]
+    parts.append("no meter reset" if resets == 0 else plural(resets, "meter reset"))
+    return ", ".join(parts)

@@ -205,6 +205,8 @@ class Service:
         self.feed_sources: dict[str, str] = {}
         self.feed_units: dict[str, str] = {}
         self.events_withheld = 0
+        #: Called with the service from each loop turn (``run --replay`` shows progress with it; it throttles).
+        self.progress: Callable[[Service], None] | None = None
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -378,6 +380,8 @@ class Service:
                                                  self.heartbeat_interval_s, os.getpid(), _version()))
         if self.notifier is not None:
             self.notifier.heartbeat()
+        if self.progress is not None:
+            self.progress(self)
 
     def _stage_feed_status(self) -> None:
         """Stage the status of every feed that changed since the last commit (only those)."""
