@@ -378,4 +378,6 @@ def load_figures(store: Any, since: datetime, until: datetime, include_shelved: 
                 v = s.event.model_version
                 models[(feed_id, v)] = by_version.get(v, latest) if v is not None else latest
     units = {f.feed_id: f.unit for f in store.feeds()}
+    # the unit the service last recorded (configured, or from the payloads) labels the plots' axes
+    units.update({fid: row.unit for fid, row in store.feed_status().items() if row.unit})
     return ShiftData(figures, incidents, models, units, store.url, hidden)

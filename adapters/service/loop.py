@@ -142,6 +142,12 @@ class Service:
         How often the shelved feeds are read again from the store.
     service_name : str
         The key of this service's heartbeat row.
+    metadata : callable, optional
+        ``metadata(feed_id) -> dict`` with the configured ``unit`` (and
+        ``description``, ``site``, ``tag``, ``timezone``): the unit a feed
+        starts with. A source may report units (``take_units()``, SenML
+        ``u``); a unit that differs from the one known is a ``unit_change``
+        event (warning, opened and closed at once).
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -152,7 +158,8 @@ class Service:
                  clock: Callable[[], datetime] | str = _utc_now, store_retry_base_s: float = 1.0,
                  store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
                  reject_log_interval_s: float = 60.0, heartbeat_interval_s: float = 5.0,
-                 shelving_refresh_s: float = 5.0, service_name: str = "leadline") -> None:
+                 shelving_refresh_s: float = 5.0, service_name: str = "leadline",
+                 metadata: Callable[[str], dict[str, Any]] | None = None) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -205,6 +212,7 @@ class Service:
         self.feed_sources: dict[str, str] = {}
         self.feed_units: dict[str, str] = {}
         self.events_withheld = 0
+        self.metadata = metadata
         #: Called with the service from each loop turn (``run --replay`` shows progress with it; it throttles).
         self.progress: Callable[[Service], None] | None = None
 
@@ -287,11 +295,19 @@ class Service:
 
     def _process(self, source: Source, readings: list[Reading]) -> None:
         for reading in readings:
+            if reading.feed_id not in self.feed_sources and self.metadata is not None:
+                unit = self.metadata(reading.feed_id).get("unit")
+                if unit:
+                    self.feed_units.setdefault(reading.feed_id, unit)
             self._handle(self.engine.process(reading), reading)
             self._changed_feeds.add(reading.feed_id)
             self.feed_sources[reading.feed_id] = source.name
             if self._latest_reading is None or reading.timestamp > self._latest_reading:
                 self._latest_reading = reading.timestamp
+        take_units = getattr(source, "take_units", None)  # optional: sources that carry units (SenML "u")
+        if callable(take_units):
+            for feed_id, unit in take_units().items():
+                self._note_unit(feed_id, unit, self._latest_reading or readings[-1].timestamp)
         for mark in source.durable_marks(readings):
             self.store.stage_offset(mark)
         self._pending_acks.append((source, readings))
@@ -382,6 +398,21 @@ class Service:
             self.notifier.heartbeat()
         if self.progress is not None:
             self.progress(self)
+
+    def _note_unit(self, feed_id: str, unit: str, at: datetime) -> None:
+        """Record a feed's unit; a change of unit is an event of its own (``unit_change``, warning)."""
+        before = self.feed_units.get(feed_id)
+        self.feed_units[feed_id] = unit
+        self._changed_feeds.add(feed_id)
+        if before is None or before == unit:
+            return
+        event = AlarmEvent(feed_id, "unit_change", "warning", at, at, parameters={"previous_unit": before,
+                                                                                 "unit": unit},
+                           detail=f"unit changed from {before!r} to {unit!r}; check the readings' scale")
+        self.store.stage_event(event)
+        self._to_publish.append(event)
+        self.events_total += 1
+        logger.warning(log_fields("unit changed", feed=feed_id, before=before, unit=unit))
 
     def _stage_feed_status(self) -> None:
         """Stage the status of every feed that changed since the last commit (only those)."""
