@@ -74,3 +74,24 @@ def test_the_demo_is_never_silent_for_more_than_2_seconds(tmp_path):
         assert proc.wait(timeout=300) == 0
     gaps = [b - a for a, b in zip(stamps, stamps[1:])]
     assert len(stamps) > 10 and max(gaps) <= 2.0, max(gaps)
+
+
+def test_the_readme_review_examples_point_at_the_demo_data():
+    """Every date in the README's review commands lies in the demo's live days, where its faults are
+    (or is the day after, as an open end), and every feed glob there matches a demo feed."""
+    import re
+    from fnmatch import fnmatchcase
+    from pathlib import Path
+
+    from leadline.adapters.cli import demo_scenario
+
+    scenario = build_scenario()
+    first = scenario.slot_time(demo_scenario.HISTORY_DAYS * demo_scenario.SLOTS_PER_DAY).date()
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    commands = [line for line in readme.splitlines() if line.startswith("leadline ") and "leadline.toml" in line]
+    assert len(commands) >= 6
+    dates = {d for line in commands for d in re.findall(r"\d{4}-\d{2}-\d{2}", line)}
+    assert dates and all(first.isoformat() <= d <= "2026-10-21" for d in dates), dates
+    assert first.isoformat() == "2026-10-19"
+    globs = [g for line in commands for g in re.findall(r"'([^']*\*[^']*)'", line)]
+    assert globs and all(any(fnmatchcase(f, g) for f in scenario.feeds) for g in globs)
