@@ -67,12 +67,13 @@ from leadline.detector.events import AlarmEvent
 from leadline.detector.evidence import EvidenceRecorder
 from leadline.detector.readings import Reading
 
-from ..ports import AlarmPublisher, EventSink, FeedStatusRow, Heartbeat, Source
+from ..ports import AlarmPublisher, EventSink, Source
 
 if TYPE_CHECKING:
     from leadline.detector.engine import Engine
 
 from .backoff import Backoff
+from .feed_reports import FeedReports
 from .reject_summary import RejectSummary, stage_source_rejects
 
 logger = logging.getLogger("leadline.service")
@@ -80,15 +81,6 @@ logger = logging.getLogger("leadline.service")
 
 def _utc_now() -> datetime:
     return datetime.now(timezone.utc)
-
-
-def _version() -> str:
-    from importlib.metadata import PackageNotFoundError, version
-
-    try:
-        return version("leadline")
-    except PackageNotFoundError:
-        return "unknown"
 
 
 def log_fields(message: str, **fields: Any) -> str:
@@ -102,7 +94,7 @@ def log_fields(message: str, **fields: Any) -> str:
     return " ".join(parts)
 
 
-class Service:
+class Service(FeedReports):
     """Wires sources, the engine, the store and an optional alarm publisher.
 
     Parameters
@@ -390,58 +382,11 @@ class Service:
         if now - self._last_summary >= self.summary_interval_s:
             self._summary(now)
         self.reject_summary.tick()
-        if now - self._last_beat >= self.heartbeat_interval_s:
-            self._last_beat = now
-            self.store.stage_heartbeat(Heartbeat(self.service_name, self.started_at, _utc_now(),
-                                                 self.heartbeat_interval_s, os.getpid(), _version()))
+        self._beat(now)
         if self.notifier is not None:
             self.notifier.heartbeat()
         if self.progress is not None:
             self.progress(self)
-
-    def _note_unit(self, feed_id: str, unit: str, at: datetime) -> None:
-        """Record a feed's unit; a change of unit is an event of its own (``unit_change``, warning)."""
-        before = self.feed_units.get(feed_id)
-        self.feed_units[feed_id] = unit
-        self._changed_feeds.add(feed_id)
-        if before is None or before == unit:
-            return
-        event = AlarmEvent(feed_id, "unit_change", "warning", at, at, parameters={"previous_unit": before,
-                                                                                 "unit": unit},
-                           detail=f"unit changed from {before!r} to {unit!r}; check the readings' scale")
-        self.store.stage_event(event)
-        self._to_publish.append(event)
-        self.events_total += 1
-        logger.warning(log_fields("unit changed", feed=feed_id, before=before, unit=unit))
-
-    def _stage_feed_status(self) -> None:
-        """Stage the status of every feed that changed since the last commit (only those)."""
-        changed, self._changed_feeds = self._changed_feeds, set()
-        for feed_id in sorted(changed):
-            try:
-                st = self.engine.feed_status(feed_id)
-            except LeadlineError:
-                continue
-            learning = st.get("learning") or {}
-            last = st.get("last_reading_time")
-            self.store.stage_feed_status(FeedStatusRow(
-                feed_id=feed_id, state=st["state"],
-                last_reading_at=datetime.fromisoformat(last) if last else None,
-                last_value=st.get("last_value"), source=self.feed_sources.get(feed_id),
-                unit=self.feed_units.get(feed_id), interval_s=st.get("interval_s"),
-                learning_have=learning.get("readings"), learning_need=learning.get("train_points")))
-
-    def shelved(self, feed_id: str) -> bool:
-        """Whether ``feed_id`` is shelved now (the store's notes, read at most every ``shelving_refresh_s``)."""
-        mono = time.monotonic()
-        if mono - self._last_shelving_read >= self.shelving_refresh_s:
-            self._last_shelving_read = mono
-            try:
-                self._shelved = self.store.shelving_in_force(_utc_now())
-            except StoreError as exc:  # keep the last known shelving while the store is away
-                logger.warning(log_fields("shelving not read; the last known is kept", error=str(exc)))
-        until = self._shelved.get(feed_id)
-        return until is not None and until > _utc_now()
 
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
