@@ -11,7 +11,8 @@ these protocols only, never against a concrete adapter:
 
 The review commands read through the store's query side instead
 (:class:`leadline.adapters.store.EventQueries`). The records that cross a
-port (:class:`SourceOffset`, :class:`RejectSample`) live here, so the store
+port (:class:`SourceOffset`, :class:`RejectSample`, :class:`FeedStatusRow`,
+:class:`Heartbeat`) live here, so the store
 does not import the sources nor they the store.
 
 The service loop
@@ -37,7 +38,8 @@ from typing import Any, Protocol, Sequence, runtime_checkable
 from leadline.detector.events import AlarmEvent
 from leadline.detector.readings import Reading
 
-__all__ = ["AlarmPublisher", "EventSink", "RejectSample", "Source", "SourceOffset"]
+__all__ = ["ALIVE_BEATS", "AlarmPublisher", "EventSink", "FeedStatusRow", "Heartbeat", "RejectSample", "Source",
+           "SourceOffset"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -77,6 +79,43 @@ class RejectSample:
     detail: str
     raw: bytes
     seen_at: datetime
+
+
+#: A service is taken as alive while its last beat is younger than this many beat intervals.
+ALIVE_BEATS = 3.0
+
+
+@dataclass(frozen=True, slots=True)
+class FeedStatusRow:
+    """One feed as the service saw it at ``updated_at`` (UTC)."""
+
+    feed_id: str
+    state: str
+    last_reading_at: datetime | None
+    last_value: float | None
+    source: str | None
+    unit: str | None
+    interval_s: float | None
+    learning_have: int | None
+    learning_need: int | None
+    updated_at: datetime | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Heartbeat:
+    """One running service: when it started, its latest beat, its process and version."""
+
+    service: str
+    started_at: datetime
+    beat_at: datetime
+    beat_interval_s: float
+    pid: int
+    version: str
+
+    def alive(self, now: datetime) -> bool:
+        """True while the last beat is younger than :data:`ALIVE_BEATS` beat intervals."""
+        return (now - self.beat_at).total_seconds() < ALIVE_BEATS * max(self.beat_interval_s, 1.0)
+
 
 
 @runtime_checkable
@@ -140,6 +179,15 @@ class EventSink(Protocol):
                      fit_stats: dict[str, Any], fitted_at: datetime, window_start: datetime,
                      window_end: datetime, reason: str) -> int:
         """Record one fit at once; return its version (1, 2, ... per feed)."""
+
+    def stage_feed_status(self, row: Any) -> None:
+        """Stage a feed's status (state, last reading, source, unit, learning progress)."""
+
+    def stage_heartbeat(self, beat: Any) -> None:
+        """Stage the service's heartbeat (start time, this beat, pid, version)."""
+
+    def shelving_in_force(self, now: datetime) -> dict[str, datetime]:
+        """The feeds shelved at ``now`` and until when, from the committed shelving notes."""
 
     def flush_due(self, now_monotonic: float | None = None) -> bool:
         """True when what is staged should be committed now."""

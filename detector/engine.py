@@ -199,6 +199,10 @@ class Engine:
         self._feeds[feed_id] = feed
         self._queued.extend(out)
 
+    def feed_status(self, feed_id: str) -> dict[str, Any]:
+        """One feed's status dict (see ``FeedLifecycle.status``)."""
+        return self._get(feed_id).status()
+
     def status(self) -> list[dict[str, Any]]:
         """One JSON-serialisable dict per feed (see ``FeedLifecycle.status``), sorted by feed id."""
         return [self._feeds[fid].status() for fid in sorted(self._feeds)]

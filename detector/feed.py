@@ -258,7 +258,11 @@ class FeedLifecycle:
 
     def _watch(self, value: float, ts: datetime, slot: int, out: EngineOutput) -> None:
         step = self.monitor.process(value, ts)
-        out.events.extend(step.events)
+        if self.counter is not None:  # what a counter feed's rules score is an interval delta, not a reading
+            out.events.extend(replace(ev, detail="interval delta" + ev.detail[len("reading"):])
+                              if ev.detail.startswith("reading") else ev for ev in step.events)
+        else:
+            out.events.extend(step.events)
         inn = step.innovation
         out.innovations.append((self.feed_id, inn))
         # the refit window holds readings on the current model's base level (see _request_refit)

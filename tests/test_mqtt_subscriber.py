@@ -225,6 +225,9 @@ def test_senml_pack_over_mqtt_gives_one_feed_per_name(broker):
             ("westbrook-pumps/pump7:flow", 12.5, datetime.fromtimestamp(T0_S, UTC)),
             ("westbrook-pumps/pump7:pressure", 3.1, datetime.fromtimestamp(T0_S + 60, UTC)),
         ]
+        # the SenML "u" of each record (RFC 8428 section 4.5.2) is reported per feed, once
+        assert sub.take_units() == {"westbrook-pumps/pump7:flow": "m3/h", "westbrook-pumps/pump7:pressure": "bar"}
+        assert sub.take_units() == {}
     finally:
         publisher.close()
         sub.close()

@@ -272,10 +272,10 @@ def test_dst_shift_through_the_command(tmp_path, monkeypatch, capsys):
 # ------------------------------------------------------------------------------ formats
 def test_csv_format(site, capsys):
     assert site.run("events", "--format", "csv") == 0
-    out = capsys.readouterr().out
-    body, last = out.rstrip("\n").rsplit("\n", 1)
-    assert last == "# " + CAUTION
+    body = capsys.readouterr().out
+    assert not body.startswith("\ufeff") and "\n#" not in body  # no trailer: every line is a record
     rows = list(csv.DictReader(io.StringIO(body)))
+    assert all(r["caution"] == CAUTION for r in rows)
     assert tuple(rows[0]) == CSV_COLUMNS
     assert [int(r["id"]) for r in rows] == [site.ids[n] for n in ("earlier_spike", "night_cusum", "night_spike",
                                                                   "day_flatline")]
@@ -295,7 +295,8 @@ def test_json_format(site, capsys):
     document = json.loads(capsys.readouterr().out)
     assert list(document)[-1] == "caution" and document["caution"] == CAUTION
     assert document["count"] == 2 and document["filters"] == {"feed": "marrowby/flow/*", "rule": None,
-                                                              "severity": None, "unacked": False}
+                                                              "severity": None, "unacked": False,
+                                                              "include_shelved": False}
     assert document["window"]["since"] == "2026-03-13T09:30:00+00:00" and document["window"]["until"] is None
     cusum, spike = document["events"]
     assert cusum["id"] == site.ids["night_cusum"] and cusum["model_version"] == 1
@@ -390,19 +391,71 @@ def test_shelve_errors(site, capsys):
 
 
 # ------------------------------------------------------------------------------ status and export
-def test_status_table(site, capsys):
+def test_status_table_without_a_service(site, capsys):
     assert site.run("status") == 0
     lines = capsys.readouterr().out.splitlines()
     assert lines[0] == "Status as of 2026-03-14 09:30 GMT; store sqlite:///" + str(site.db)
-    assert lines[-1] == CAUTION
+    assert lines[1].startswith("Service: no running service has written to this store")
+    assert lines[-1] == CAUTION and sum(line == CAUTION for line in lines) == 1
     row = {line.split()[0]: line for line in lines if line.startswith("marrowby/")}
     assert set(row) == {FLOW1, FLOW2, LEVEL, PUMP}
-    assert "watching" in row[FLOW1] and "v1 ARIMA(1,0,1)" in row[FLOW1] and "(3h 20min ago)" in row[FLOW1]
-    assert "v2 ARIMA(1,0,0)" in row[PUMP] and "(8h ago)" in row[PUMP]  # the latest model version
+    # no heartbeat: a feed with a model is not shown as watching
+    assert "stopped (was watching)" in row[FLOW1] and "v1: ARIMA(1,0,1)" in row[FLOW1]
+    assert "v2: ARIMA(1,0,0)" in row[PUMP]  # the latest model version
     assert "learning" in row[LEVEL] and "1: flatline alarm (unacked)" in row[LEVEL]
+    assert all(" watching " not in line for line in row.values())
+    # the open stale-free flatline alarm does not make LEVEL stale; nothing has a last reading
     rejects = next(line for line in lines if line.startswith("scada-export"))
     assert rejects.split()[:3] == ["scada-export", "bad_time", "1"]
     assert any("STATE is inferred from the model records" in line for line in lines)
+
+
+def test_status_is_a_health_view_of_the_running_service(site, capsys, monkeypatch):
+    from leadline.adapters.ports import FeedStatusRow, Heartbeat
+
+    with open_store(str(site.db)) as store:
+        store.record_model(FLOW2, "ARIMA(1,0,0)", {}, {}, {
+            "description": "daily cycle, 2 harmonics; AR(1) + const",
+            "problems": ["residuals autocorrelated"],
+            "advice": [{"kind": "autocorrelated", "text": "residuals autocorrelated (Ljung-Box p = 0.001)",
+                        "remedy": "try a higher AR order"}]},
+            fitted_at=NOW - timedelta(hours=1), window_start=NOW - timedelta(days=14),
+            window_end=NOW - timedelta(hours=1), reason="first fit")
+        # FLOW1 read 10 min ago (fresh); FLOW2 read 2 h ago at 15-min intervals (stale); LEVEL learning
+        store.stage_feed_status(FeedStatusRow(FLOW1, "watching", NOW - timedelta(minutes=10), 12.345678,
+                                              "marrowby-broker", "m3/h", 900.0, None, None))
+        store.stage_feed_status(FeedStatusRow(FLOW2, "watching", NOW - timedelta(hours=2), 3.0,
+                                              "marrowby-broker", "m3/h", 900.0, None, None))
+        store.stage_feed_status(FeedStatusRow(LEVEL, "learning", NOW - timedelta(minutes=5), 4.25,
+                                              "marrowby-broker", "m", 900.0, 312, 672))
+        store.stage_heartbeat(Heartbeat("leadline", NOW - timedelta(days=1, hours=2), NOW - timedelta(seconds=4),
+                                        5.0, 4242, "0.1.0"))
+        store.shelve(PUMP, "R. Okonkwo", "pump overhaul", NOW + timedelta(hours=8), at=NOW - timedelta(minutes=1))
+        store.flush()
+    assert site.run("status") == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[1].startswith("Service: running since 2026-03-13 07:30 GMT (pid 4242, leadline 0.1.0; last beat 4 s")
+    feed_lines = [line for line in lines if line.startswith("marrowby/")]
+    assert feed_lines[0].startswith(FLOW2)  # the stale feed first
+    row = {line.split()[0]: line for line in feed_lines}
+    assert "3 m3/h at 2026-03-14 07:30 GMT" in row[FLOW2] and "2 h 0 min STALE" in row[FLOW2]
+    assert "v1: daily cycle, 2 harmonics; AR(1) + const" in row[FLOW2]
+    assert "residuals autocorrelated (Ljung-Box p = 0.001) (advice: try a higher AR order)" in row[FLOW2]
+    assert "12.35 m3/h at 2026-03-14 09:20 GMT" in row[FLOW1] and " watching " in row[FLOW1]
+    assert "STALE" not in row[FLOW1] and "10 min" in row[FLOW1]
+    assert "learning 312 of 672" in row[LEVEL]
+    assert "2026-03-14 17:30 GMT (R. Okonkwo)" in row[PUMP]
+
+    # the beat gets old: the service is taken as stopped, and no feed is "watching"
+    late = NOW + timedelta(minutes=5)
+    monkeypatch.setattr(review, "utc_now", lambda: late)
+    assert site.run("status", "--format", "json") == 0
+    document = json.loads(capsys.readouterr().out)
+    assert document["service"]["alive"] is False and document["service"]["pid"] == 4242
+    feeds = {f["feed_id"]: f for f in document["feeds"]}
+    assert feeds[FLOW1]["state"] == "watching" and feeds[FLOW1]["state_shown"] == "stopped (was watching)"
+    assert feeds[LEVEL]["learning"] == {"readings": 312, "needed": 672}
+    assert feeds[FLOW1]["unit"] == "m3/h" and feeds[FLOW1]["state_from"] == "service"
 
 
 def test_status_json(site, capsys):
@@ -439,10 +492,9 @@ def test_export_with_notes(site, capsys, tmp_path):
         ("ack", "R. Okonkwo", "valve closed"), ("comment", "T. Hale", "repair booked")]
 
     assert site.run("export", "--shift", "last") == 0  # CSV by default
-    text = capsys.readouterr().out
-    body, last = text.rstrip("\n").rsplit("\n", 1)
-    assert last == "# " + CAUTION
+    body = capsys.readouterr().out
     rows = list(csv.DictReader(io.StringIO(body)))
+    assert rows[-1]["caution"] == CAUTION
     assert [int(r["id"]) for r in rows] == [site.ids["night_cusum"], site.ids["night_spike"]]
     assert rows[0]["acknowledged_by"] == "R. Okonkwo" and rows[0]["acknowledged_at"] == "2026-03-14T09:30:00+00:00"
     assert rows[0]["notes"].splitlines() == ["2026-03-14T09:30:00+00:00 ack by R. Okonkwo: valve closed",
@@ -486,6 +538,10 @@ def test_until_before_since_is_refused(site, capsys):
     assert "is not after --since" in capsys.readouterr().err
 
 
-def test_show_age():
+def test_show_age_is_the_one_duration_formatter():
+    from leadline.adapters.report import figures
+    from leadline.detector.durations import human_duration
+
+    assert figures.human_duration is human_duration
     assert [review.show_age(s) for s in (5, 125, 3600, 3 * 3600 + 20 * 60, 86400, 2 * 86400 + 4 * 3600)] == [
-        "5s", "2min", "1h", "3h 20min", "1d", "2d 4h"]
+        "5 s", "2 min", "1 h 0 min", "3 h 20 min", "1 d 0 h 0 min", "2 d 4 h 0 min"]

@@ -32,7 +32,11 @@ FEED = "fenwick/reservoir/level"
 class ScriptedEngine:
     """Stands in for the core's Engine: one alarm event for each reading above ``LIMIT``."""
 
+    last = None
+    last_value = None
+
     def process(self, reading):
+        self.last, self.last_value = reading.timestamp, reading.value
         events = []
         if reading.value > LIMIT:
             events.append(AlarmEvent(reading.feed_id, "range", "alarm", reading.timestamp,
@@ -44,6 +48,10 @@ class ScriptedEngine:
 
     def checkpoints(self):
         return {}
+
+    def feed_status(self, feed_id):
+        return {"state": "watching", "last_reading_time": self.last.isoformat(), "last_value": self.last_value,
+                "interval_s": 900.0}
 
     def status(self):
         return []
@@ -110,3 +118,40 @@ def test_events_are_published_after_their_commit_and_shutdown_closes_everything(
         assert offset.offset_bytes == csv.stat().st_size
     finally:
         reopened.close()
+
+
+def test_a_shelved_feed_is_recorded_not_published_and_the_service_reports_its_feeds(tmp_path):
+    import os
+
+    csv = tmp_path / "levels.csv"
+    lines = ["timestamp,feed,value"] + [f"{(T0 + timedelta(minutes=15 * i)).isoformat()},{FEED},{i}"
+                                        for i in range(10)]
+    csv.write_text("\n".join(lines) + "\n")
+    db_url = f"sqlite:///{tmp_path / 'events.db'}"
+    store = open_store(db_url)
+    store.ensure_feed(FEED)
+    now = datetime.now(UTC)
+    store.shelve(FEED, "R. Okonkwo", "sensor swap", now + timedelta(hours=2), at=now - timedelta(seconds=1))
+    publisher = CheckingPublisher(db_url)
+    follower = CsvFollower("meters", str(csv), CsvLayout(), from_start=True, rotate_grace_s=0.0,
+                           rescan_interval_s=0.0)
+    service = Service(engine=ScriptedEngine(), store=store, sources=[follower], publisher=publisher,
+                      refit_workers=0, clock="readings")
+    assert service.run(until_idle=lambda: service.readings_total >= 10) == 0
+    assert service.shelved(FEED) and not service.shelved("fenwick/other")
+    store.flush()
+    assert publisher.published == [] and service.events_withheld == 3
+    publisher.close()
+    reopened = open_store(db_url)
+    try:
+        # recorded all the same
+        assert [s.event.value_at_onset for s in reopened.events()] == [7.0, 8.0, 9.0]
+        row = reopened.feed_status()[FEED]
+        assert (row.state, row.source, row.last_value) == ("watching", "meters", 9.0)
+        assert row.last_reading_at == T0 + timedelta(minutes=15 * 9)
+        (beat,) = reopened.heartbeats()
+        assert beat.pid == os.getpid() and beat.alive(datetime.now(UTC))
+        assert not beat.alive(beat.beat_at + timedelta(seconds=3 * beat.beat_interval_s + 1))
+    finally:
+        reopened.close()
+        store.close()

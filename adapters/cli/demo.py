@@ -25,6 +25,7 @@ from zoneinfo import ZoneInfo
 from leadline.detector.errors import DataError
 from leadline.detector.events import CAUTION
 
+from .words import counter_words, plural
 from . import demo_scenario as scenario_module
 from ..config.file import load_config
 from ..service.wiring import build_service, open_configured_store
@@ -157,6 +158,7 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     def progress(text: str) -> None:
         print(f"[{time.monotonic() - started:5.1f} s] {text}", file=out, flush=True)
 
+    progress("building the invented Fenwick Vale scenario")
     scenario = scenario_module.build_scenario()
     prepare_folder(folder)
     history_rows = write_history(folder, scenario)
@@ -183,10 +185,17 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     live_rows = append_live(folder, scenario, live_seconds, progress)
     expected = history_rows + live_rows
     deadline = time.monotonic() + 120.0
+    last_line = time.monotonic()
     while time.monotonic() < deadline and not failure:
-        states = {s["state"] for s in service.engine.status()}
+        status = service.engine.status()
+        states = {s["state"] for s in status}
         if service.readings_total >= expected and not service.refits_running and states == {"watching"}:
             break
+        if time.monotonic() - last_line >= 1.0:  # never silent for long
+            watching = sum(s["state"] == "watching" for s in status)
+            progress(f"{service.readings_total:,} of {expected:,} readings read; {watching} of {len(status)} feeds "
+                     f"watching, {plural(service.refits_running, 'fit')} running")
+            last_line = time.monotonic()
         time.sleep(0.2)
     service.request_stop()
     thread.join(timeout=60.0)
@@ -196,7 +205,7 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     progress(f"done: {service.readings_total} readings, {len(events)} events")
     zone = ZoneInfo("Europe/London")
     buffer = io.StringIO()
-    write_table(events, buffer, zone, "Events (times in Europe/London)")
+    write_table(events, buffer, zone, "Events (times in Europe/London)", caution=False)  # printed once, at the end
     print(buffer.getvalue().rstrip("\n"), file=out)
     print("\nWhat each event was:", file=out)
     by_fault: dict[int, list] = {}
@@ -225,9 +234,9 @@ def run_demo(folder: Path, out: TextIO = sys.stdout, live_seconds: float = LIVE_
     wanted = {i for i, f in enumerate(scenario.faults) if f.rule is not None}
     found = set(by_fault)
     status = {s["feed_id"]: s for s in service.engine.status()}
-    rollover = status["fenwick/bulk-west/volume"].get("counter", {})
+    counts = status["fenwick/bulk-west/volume"].get("counter", {})
     print(f"\nPlanted faults found: {len(found & wanted)} of {len(wanted)}. The register rollover of "
-          f"fenwick/bulk-west/volume was handled as a rollover ({rollover}), not as an alarm.", file=out)
+          f"fenwick/bulk-west/volume was handled as a rollover, not as an alarm: {counter_words(counts)}.", file=out)
     config_path = folder / "leadline.toml"
     first = events[0].id if events else 1
     print(f"""

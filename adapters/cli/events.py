@@ -11,7 +11,9 @@ from leadline.detector.rules.registry import event_rule_names
 
 from . import review
 from ..config.values import did_you_mean
+from .words import plural
 from .formats import write_csv, write_json, write_table
+from .shelving import add_include_option, split_shelved
 from .review import Review, Window, add_store_options, add_window_options, iso, open_review, resolve_window
 
 #: The rule names the engine emits (AlarmEvent.rule: the rule registry and the engine's own kinds), for hints.
@@ -25,10 +27,12 @@ def add_filter_options(parser) -> None:
     parser.add_argument("--rule", help=f"one rule: {', '.join(KNOWN_RULES)}")
     parser.add_argument("--severity", choices=SEVERITIES, help="one severity")
     parser.add_argument("--unacked", action="store_true", help="only events nobody has acknowledged")
+    add_include_option(parser)
 
 
 def filters_of(args) -> dict[str, Any]:
-    return {"feed": args.feed, "rule": args.rule, "severity": args.severity, "unacked": bool(args.unacked)}
+    return {"feed": args.feed, "rule": args.rule, "severity": args.severity, "unacked": bool(args.unacked),
+            "include_shelved": bool(getattr(args, "include_shelved", False))}
 
 
 def window_record(window: Window, rv: Review) -> dict[str, Any]:
@@ -36,18 +40,36 @@ def window_record(window: Window, rv: Review) -> dict[str, Any]:
             "shift": window.shift.label if window.shift else None, "timezone": rv.zone_name}
 
 
-NO_FILTERS: dict[str, Any] = {"feed": None, "rule": None, "severity": None, "unacked": False}
+#: Export keeps every record, the events of shelved feeds included.
+NO_FILTERS: dict[str, Any] = {"feed": None, "rule": None, "severity": None, "unacked": False,
+                              "include_shelved": True}
 
 
 def fetch(rv: Review, window: Window, filters: dict[str, Any], limit: int | None = None) -> list:
-    return rv.store.events(since=window.since, until=window.until, feed_pattern=filters["feed"],
-                           rule=filters["rule"], severity=filters["severity"],
-                           unacked=True if filters["unacked"] else None, limit=limit)
+    """The window's events; those of shelved feeds left out unless ``filters["include_shelved"]``."""
+    events = rv.store.events(since=window.since, until=window.until, feed_pattern=filters["feed"],
+                             rule=filters["rule"], severity=filters["severity"],
+                             unacked=True if filters["unacked"] else None,
+                             limit=limit if filters.get("include_shelved", True) else None)
+    if not filters.get("include_shelved", True):
+        events, _ = split_shelved(events, rv.store.shelving_notes())
+        events = events[:limit] if limit is not None else events
+    return events
+
+
+def hidden_shelved(rv: Review, window: Window, filters: dict[str, Any]) -> int:
+    """How many events of the window were left out as events of shelved feeds."""
+    if filters.get("include_shelved", True):
+        return 0
+    every = rv.store.events(since=window.since, until=window.until, feed_pattern=filters["feed"],
+                            rule=filters["rule"], severity=filters["severity"],
+                            unacked=True if filters["unacked"] else None)
+    return split_shelved(every, rv.store.shelving_notes())[1]
 
 
 def heading(window: Window, rv: Review, filters: dict[str, Any]) -> str:
     parts = [window.describe(rv.zone)]
-    shown = {k: v for k, v in filters.items() if v}
+    shown = {k: v for k, v in filters.items() if v and k != "include_shelved"}
     if shown:
         parts.append("filters: " + ", ".join(f"{k} {v}" if v is not True else k for k, v in shown.items()))
     parts.append(f"times in {rv.zone_name}; store {rv.store.url}")
@@ -72,6 +94,9 @@ def run_events(args, out: TextIO | None = None, err: TextIO | None = None) -> in
         window = resolve_window(args, rv, now, DEFAULT_SINCE)
         filters = filters_of(args)
         events = fetch(rv, window, filters, args.limit)
+        hidden = hidden_shelved(rv, window, filters)
+        if hidden and args.format == "table":
+            print(f"{plural(hidden, 'event')} of shelved feeds not listed (--include-shelved lists them).", file=out)
         write_listing(events, args.format, out, rv, window, filters)
     if not events and args.rule and args.rule not in KNOWN_RULES:
         hint = did_you_mean(args.rule, KNOWN_RULES)

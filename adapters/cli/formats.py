@@ -3,10 +3,13 @@
 Every format ends with the caution (:data:`~leadline.detector.events.CAUTION`):
 
 * **table**: the last line of the output;
-* **CSV**: each row has a ``caution`` column, and the last line is the
-  caution as a comment, ``# Advisory only: ...``; read the file with a CSV
-  reader that skips lines starting with ``#`` (each row's own fields never
-  start a line with ``#``: the first column is the numeric event id);
+* **CSV**: UTF-8 (a byte order mark first with ``export --bom``, for
+  spreadsheets that guess the encoding otherwise), a header row, then one
+  row per event; the caution is the last column of every row, and there is
+  no trailer line, so every line after the header is a record and a
+  spreadsheet opens the file without a stray row;
+* **xlsx** (``export --format xlsx``, :mod:`.spreadsheet`): real date cells,
+  a frozen header row, the caution on a sheet of its own;
 * **JSON**: one object ``{"window": ..., "filters": ..., "count": n,
   "events": [...], "caution": "..."}``, the caution as its last member and
   in each event. Events that were never stored (``leadline score
@@ -37,6 +40,7 @@ from leadline.detector.events import CAUTION, AlarmEvent
 
 from .review import iso, print_caution, show_time
 from ..sinks.safe_text import csv_text_cell, safe_text
+from .words import plural, show_abs_z, show_value
 from ..store.records import Note, StoredEvent
 
 CSV_COLUMNS = (
@@ -120,7 +124,10 @@ def _cell(x: float | None) -> str:
     return "" if x is None else repr(x)
 
 
-def write_csv(events: Iterable[StoredEvent], out: TextIO) -> int:
+def write_csv(events: Iterable[StoredEvent], out: TextIO, bom: bool = False) -> int:
+    """The events as CSV (module notes); ``bom`` writes U+FEFF first."""
+    if bom:
+        out.write("\ufeff")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     n = 0
@@ -138,7 +145,6 @@ def write_csv(events: Iterable[StoredEvent], out: TextIO) -> int:
             json.dumps(r["parameters"], sort_keys=True), r["created_at"], r["updated_at"], r["caution"],
         ])
         n += 1
-    print_caution(out, prefix="# ")
     return n
 
 
@@ -161,8 +167,9 @@ def write_alarm_events_json(events: Iterable[AlarmEvent], out: TextIO) -> int:
     return len(records)
 
 
-def _short(x: float | None, digits: int = 6) -> str:
-    return "" if x is None else f"{x:.{digits}g}"
+def _short(x: float | None) -> str:
+    """A value to 4 significant figures (:func:`.words.show_value`); empty when absent."""
+    return "" if x is None else show_value(x)
 
 
 def table_rows(events: Sequence[StoredEvent], zone: tzinfo) -> list[list[str]]:
@@ -173,8 +180,9 @@ def table_rows(events: Sequence[StoredEvent], zone: tzinfo) -> list[list[str]]:
         rows.append([
             str(stored.id), show_time(ev.start, zone), "active" if ev.end is None else show_time(ev.end, zone),
             ev.feed_id, ev.rule, ev.severity,
-            _short(_number(ev.peak_abs_z), 3), _short(_number(ev.value_at_onset)),
-            _short(_number(ev.forecast_at_onset)), ack.operator if ack else "-", " ".join(ev.detail.split()),
+            show_abs_z(_number(ev.peak_abs_z)) if _number(ev.peak_abs_z) is not None else "",
+            _short(_number(ev.value_at_onset)), _short(_number(ev.forecast_at_onset)),
+            ack.operator if ack else "-", " ".join(ev.detail.split()),
         ])
     return rows
 
@@ -196,7 +204,8 @@ def write_aligned(header: Sequence[str], rows: Sequence[Sequence[str]], out: Tex
         print("  ".join(cells).rstrip(), file=out)
 
 
-def write_table(events: Sequence[StoredEvent], out: TextIO, zone: tzinfo, heading: str) -> int:
+def write_table(events: Sequence[StoredEvent], out: TextIO, zone: tzinfo, heading: str, caution: bool = True) -> int:
+    """The events as an aligned table; the caution last unless the caller prints it once itself."""
     print(safe_text(heading), file=out)
     if not events:
         print("No events.", file=out)
@@ -204,7 +213,7 @@ def write_table(events: Sequence[StoredEvent], out: TextIO, zone: tzinfo, headin
         write_aligned(TABLE_COLUMNS, table_rows(events, zone), out, _RIGHT)
         active = sum(1 for e in events if e.event.end is None)
         unacked = sum(1 for e in events if not e.acknowledged)
-        print(f"{len(events)} event{'s' if len(events) != 1 else ''} ({active} active, {unacked} unacknowledged).",
-              file=out)
-    print_caution(out)
+        print(f"{plural(len(events), 'event')} ({active} active, {unacked} unacknowledged).", file=out)
+    if caution:
+        print_caution(out)
     return len(events)

@@ -12,11 +12,15 @@ import sys
 from datetime import timedelta
 from typing import TextIO
 
-from leadline.detector.durations import parse_duration_s
+from fnmatch import fnmatchcase
+
+from leadline.detector.durations import human_duration, parse_duration_s
 from leadline.detector.errors import DataError, SpecError, StoreError
 
 from . import review
+from ..config.shelving import DEFAULT_MAX_SHELVE_S
 from ..config.values import did_you_mean
+from .words import plural
 from .review import add_store_options, open_review, show_time
 from ..sinks.safe_text import safe_text
 from ..store.reads import EventQueries
@@ -42,6 +46,7 @@ def _describe(stored: StoredEvent, zone) -> str:
 
 def run_ack(args, out: TextIO | None = None) -> int:
     out = out or sys.stdout
+    require_flag(args.by, "--by")
     with open_review(args) as rv:
         events = _events(rv.store, args.event, "acknowledged")
         now = review.utc_now()
@@ -57,6 +62,8 @@ def run_ack(args, out: TextIO | None = None) -> int:
 
 def run_note(args, out: TextIO | None = None) -> int:
     out = out or sys.stdout
+    require_flag(args.by, "--by")
+    require_flag(args.note, "--note")
     with open_review(args) as rv:
         (stored,) = _events(rv.store, [args.event], "noted")
         note_id = rv.store.add_note(stored.id, "comment", args.by, args.note, at=review.utc_now())
@@ -64,8 +71,36 @@ def run_note(args, out: TextIO | None = None) -> int:
     return 0
 
 
+def require_flag(value: str | None, flag: str) -> str:
+    """The value of ``flag``, refused when empty or blank ("--by must not be empty")."""
+    if value is None or not value.strip():
+        raise DataError(f"{flag} must not be empty")
+    return value
+
+
+def _max_shelve_s(rv) -> float:
+    return rv.config.shelving.max_duration_s if rv.config is not None else DEFAULT_MAX_SHELVE_S
+
+
+def _matching_feeds(pattern: str, feeds: list[str], url: str) -> list[str]:
+    if not any(c in pattern for c in "*?["):
+        if pattern in feeds:
+            return [pattern]
+        hint = did_you_mean(pattern, feeds)
+        raise StoreError(f"no feed {pattern!r} in {url}" + (f"; {hint}" if hint else "")
+                         + "; nothing was shelved. List feeds with: leadline status")
+    matched = [f for f in feeds if fnmatchcase(f, pattern)]
+    if not matched:
+        raise StoreError(f"no feed matches {pattern!r} in {url}; nothing was shelved. List feeds with: "
+                         "leadline status")
+    return matched
+
+
 def run_shelve(args, out: TextIO | None = None) -> int:
+    """Shelve one feed or a glob of feeds (one note each), or end their shelving with ``--end``."""
     out = out or sys.stdout
+    require_flag(args.by, "--by")
+    require_flag(args.note, "--note")
     if args.end == bool(args.duration):
         raise DataError("give --for DURATION (such as 8h) to shelve, or --end to end a shelving now")
     span_s = 0.0
@@ -75,19 +110,36 @@ def run_shelve(args, out: TextIO | None = None) -> int:
         except SpecError as exc:
             raise DataError(f"--for {args.duration!r}: expected a duration such as 30min, 8h or 2d") from exc
     with open_review(args) as rv:
-        feeds = [f.feed_id for f in rv.store.feeds()]
-        if args.feed not in feeds:
-            hint = did_you_mean(args.feed, feeds)
-            raise StoreError(f"no feed {args.feed!r} in {rv.store.url}" + (f"; {hint}" if hint else "")
-                             + "; nothing was shelved. List feeds with: leadline status")
+        longest_s = _max_shelve_s(rv)
+        if span_s > longest_s:
+            raise DataError(f"--for {args.duration}: longer than the longest shelving, {human_duration(longest_s)} "
+                            "([shelving] max_duration in the config); shelve again when it ends")
+        targets = _matching_feeds(args.feed, [f.feed_id for f in rv.store.feeds()], rv.store.url)
         now = review.utc_now()
-        until = now + timedelta(seconds=span_s)
-        note_id = rv.store.shelve(args.feed, args.by, args.note, until, at=now)
+        in_force = {n.feed_id: n for n in rv.store.shelved_feeds(now)}
         if args.end:
-            print(safe_text(f"Ended the shelving of {args.feed} as {args.by} (note {note_id})."), file=out)
-        else:
-            print(safe_text(f"Shelved {args.feed} until {show_time(until, rv.zone)} as {args.by} (note {note_id})."),
-                  file=out)
+            unshelved = [f for f in targets if f not in in_force]
+            if len(unshelved) == len(targets):
+                raise DataError(f"--end: {args.feed} is not shelved" if len(targets) == 1 else
+                                f"--end: no feed matching {args.feed!r} is shelved; nothing was ended")
+            targets = [f for f in targets if f in in_force]
+        until = now + timedelta(seconds=span_s)
+        for feed in targets:
+            before = in_force.get(feed)
+            note_id = rv.store.shelve(feed, args.by, args.note, until, at=now)
+            if args.end:
+                print(safe_text(f"Ended the shelving of {feed} by {before.operator} (note {before.id}, until "
+                                f"{show_time(before.expires_at, rv.zone)}) as {args.by} (note {note_id})."),
+                      file=out)
+                continue
+            replaces = "" if before is None else (
+                f"; this replaces the shelving by {before.operator} until {show_time(before.expires_at, rv.zone)} "
+                f"(note {before.id})")
+            print(safe_text(f"Shelved {feed} until {show_time(until, rv.zone)} as {args.by} (note {note_id})"
+                            f"{replaces}."), file=out)
+        if len(targets) > 1:
+            print(f"{plural(len(targets), 'feed')} {'unshelved' if args.end else 'shelved'}; each shelving is a note "
+                  "of its own in the audit trail.", file=out)
     return 0
 
 
@@ -114,11 +166,15 @@ def add_parser(subparsers) -> None:
     p.set_defaults(handler=run_note)
 
     p = subparsers.add_parser("shelve", help="shelve a feed for a while",
-                              description="Shelve a feed (for example during maintenance) for a stated time, "
-                                          "with your name and the reason; --end ends a shelving early.")
-    p.add_argument("feed", metavar="FEED", help="the feed id, as listed by leadline status")
+                              description="Shelve a feed or a glob of feeds (for example during maintenance) "
+                                          "for a stated time, with your name and the reason: their alarms are "
+                                          "still recorded, but not published and not listed by default. "
+                                          "--end ends a shelving early. Every shelving stays in the audit trail.")
+    p.add_argument("feed", metavar="FEED", help="the feed id, as listed by leadline status, or a glob of feeds "
+                                                "such as 'fenwick/*/flow' (quote it)")
     group = p.add_mutually_exclusive_group()
-    group.add_argument("--for", dest="duration", metavar="DURATION", help="how long, such as 30min, 8h or 2d")
+    group.add_argument("--for", dest="duration", metavar="DURATION",
+                       help="how long, such as 30min, 8h or 2d (at most [shelving] max_duration, default 7d)")
     group.add_argument("--end", action="store_true", help="end the feed's shelving now")
     _common(p, note_required=True)
     p.set_defaults(handler=run_shelve)

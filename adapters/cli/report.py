@@ -29,6 +29,9 @@ from leadline.detector.events import CAUTION
 from . import review
 from .review import Review, Window, add_store_options, add_window_options, open_review, show_time
 from .summary import resolve_report_window, window_title
+from .progress import Progress
+from .words import show_abs_z
+from .shelving import add_include_option
 from ..report.figures import (FLOOD_ALARMS, REPEAT_MIN, RATE_BIN, Incident, ShiftData, human_duration, load_figures,
                             model_in_words, plural, reference_rows)
 
@@ -78,7 +81,7 @@ def _incident_lines(inc: Incident, data: ShiftData, rv: Review) -> list[str]:
     lines = []
     for s in inc.events:
         ev = s.event
-        peak = "" if ev.peak_abs_z != ev.peak_abs_z else f", |z| up to {ev.peak_abs_z:.3g}"
+        peak = "" if ev.peak_abs_z != ev.peak_abs_z else f", |z| up to {show_abs_z(ev.peak_abs_z)}"
         end = "active" if ev.end is None else f"cleared {show_time(ev.end, rv.zone)}"
         lines.append(f"#{s.id} {ev.rule} ({ev.severity}{peak}) at {show_time(ev.start, rv.zone)}, {end}: {ev.detail}")
     unit = data.units.get(inc.feed_id)
@@ -99,8 +102,9 @@ def _incident_lines(inc: Incident, data: ShiftData, rv: Review) -> list[str]:
     return lines
 
 
-def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime) -> dict[str, Any]:
-    """Everything the template shows (plots rendered as SVG text)."""
+def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime,
+                  progress: Any = None) -> dict[str, Any]:
+    """Everything the template shows (plots rendered as SVG text); ``progress`` is told of each panel."""
     from markupsafe import Markup
 
     from ..report.plots import incident_svg, rate_svg
@@ -116,6 +120,8 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
                     "Alarms started per 10 minutes over the window")
     panels = []
     for n, inc in enumerate(data.incidents[:MAX_PANELS], start=1):
+        if progress is not None:
+            progress.update(n - 1)
         series = merged_evidence([evidence.get(s.event.key) for s in inc.events])
         svg = None
         if series is not None:
@@ -176,7 +182,8 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
     }
 
 
-def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime) -> str:
+def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime,
+                  progress: Any = None) -> str:
     """The HTML page."""
     from ..report.plots import require_report_libraries
 
@@ -186,7 +193,7 @@ def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, n
     from ..report.template import PAGE
 
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
-    return env.from_string(PAGE).render(**build_context(data, window, rv, evidence, now))
+    return env.from_string(PAGE).render(**build_context(data, window, rv, evidence, now, progress))
 
 
 def default_path(window: Window) -> Path:
@@ -203,10 +210,12 @@ def run_report(args, out: TextIO | None = None) -> int:
     now = review.utc_now()
     with open_review(args) as rv:
         window = resolve_report_window(args, rv, now)
-        data = load_figures(rv.store, window.since, window.until)
+        data = load_figures(rv.store, window.since, window.until, include_shelved=args.include_shelved)
         keys = [s.event.key for inc in data.incidents[:MAX_PANELS] for s in inc.events]
         evidence = rv.store.evidence(keys)
-        html = render_report(data, window, rv, evidence, now)
+        drawing = Progress(out, "drawing incident panels", min(len(data.incidents), MAX_PANELS), after_s=1.0)
+        html = render_report(data, window, rv, evidence, now, drawing)
+        drawing.finish(min(len(data.incidents), MAX_PANELS))
     path = Path(args.out) if args.out else default_path(window)
     try:
         path.write_text(html, encoding="utf-8")
@@ -225,5 +234,6 @@ def add_parser(subparsers) -> None:
                     "with its readings, forecast and notes. Needs the leadline[report] extra. Alarms are advisory.")
     add_store_options(p)
     add_window_options(p, None)
+    add_include_option(p)
     p.add_argument("--out", metavar="FILE", help="the HTML file to write (default: leadline-report-<shift>.html)")
     p.set_defaults(handler=run_report)

@@ -147,17 +147,10 @@ def iso(moment: datetime | None) -> str | None:
 
 
 def show_age(seconds: float) -> str:
-    """``45s``, ``12min``, ``3h 20min``, ``2d 4h``."""
-    s = max(0, int(seconds))
-    if s < 60:
-        return f"{s}s"
-    if s < 3600:
-        return f"{s // 60}min"
-    if s < 86400:
-        h, m = divmod(s // 60, 60)
-        return f"{h}h {m}min" if m else f"{h}h"
-    d, h = divmod(s // 3600, 24)
-    return f"{d}d {h}h" if h else f"{d}d"
+    """An age in words (:func:`leadline.detector.durations.human_duration`, the package's one formatter)."""
+    from leadline.detector.durations import human_duration
+
+    return human_duration(seconds)
 
 
 # ----------------------------------------------------------------------------- windows

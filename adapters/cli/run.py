@@ -25,6 +25,8 @@ from ..service.log_setup import LEVELS as LOG_LEVELS
 from ..service.log_setup import configure_logging
 from ..service.sd_notify import Notifier
 from ..service.loop import Service, log_fields
+from .progress import Progress
+from .words import plural
 from ..service.wiring import build_service, run_service
 from ..service.startup import plaintext_credential_warnings, wait_for_brokers
 
@@ -76,6 +78,10 @@ def _handle(args) -> int:
         _close_quietly(service)
         return EX_TEMPFAIL
     service.notifier = Notifier()
+    if args.replay:
+        shown = Progress(sys.stdout, "replaying", unit="readings")
+        service.progress = lambda svc: shown.update(
+            svc.readings_total, f"{plural(svc.events_total, 'event')}, reading time {svc.clock():%Y-%m-%d %H:%M} UTC")
     try:
         return run_service(service)
     except LeadlineError as exc:

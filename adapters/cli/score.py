@@ -21,6 +21,7 @@ from leadline.detector.rules.monitor import FeedMonitor, MonitorConfig
 from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod, zone_info
 from leadline.detector.spec import ModelSpec
 
+from .words import plural
 from ..sources.series_csv import read_series_csv
 from ..sources.timeparse import epoch_seconds_to_utc
 from .formats import write_alarm_events_json
@@ -123,7 +124,7 @@ def run_score(args, out: TextIO = sys.stdout, err: TextIO = sys.stderr) -> int:
         writer.writerow([_iso(epoch[t]), _fmt(grid.values[t]), _fmt(inn.forecast), _fmt(inn.error),
                          _fmt(inn.variance), _fmt(inn.z), _fmt(inn.lower), _fmt(inn.upper)]
                         + [monitor.lifecycles[rule].state for rule in rules])
-    print(f"  {len(events)} alarm events ({args.threshold_mode} limits); {CAUTION}", file=err)
+    print(f"  {plural(len(events), 'alarm event')} ({args.threshold_mode} limits); {CAUTION}", file=err)
     if args.events_out:
         write_events(args.events_out, list(events.values()))
     return 0

@@ -15,6 +15,7 @@ from typing import TextIO
 from . import review
 from .formats import write_aligned
 from .review import Review, Window, add_store_options, add_window_options, open_review, print_caution, show_time
+from .shelving import add_include_option
 from ..report.figures import ShiftData, human_duration, load_figures, plural, reference_rows
 
 DEFAULT_SINCE = "12h"
@@ -43,6 +44,9 @@ def write_summary(data: ShiftData, window: Window, rv: Review, out: TextIO) -> N
     zone = rv.zone
     print(f"Summary of the {window_title(window, rv)}", file=out)
     print(f"Store {data.store_url}; times in {rv.zone_name}.", file=out)
+    if data.shelved_hidden:
+        print(f"{plural(data.shelved_hidden, 'alarm')} of shelved feeds left out (--include-shelved counts them).",
+              file=out)
     print("", file=out)
     sev = fig.by_severity
     parts = [f"{sev[s]} {s}" for s in ("alarm", "warning") if sev.get(s)]
@@ -96,7 +100,7 @@ def run_summary(args, out: TextIO | None = None) -> int:
     now = review.utc_now()
     with open_review(args) as rv:
         window = resolve_report_window(args, rv, now)
-        data = load_figures(rv.store, window.since, window.until)
+        data = load_figures(rv.store, window.since, window.until, include_shelved=args.include_shelved)
         write_summary(data, window, rv, out)
     return 0
 
@@ -109,4 +113,5 @@ def add_parser(subparsers) -> None:
                     "shelved and stale feeds) beside reference rates of common practice. Alarms are advisory.")
     add_store_options(p)
     add_window_options(p, None)
+    add_include_option(p)
     p.set_defaults(handler=run_summary)

@@ -43,6 +43,7 @@ from .values import (
     integer,
     list_of,
     number,
+    text,
     toml_repr,
 )
 
@@ -85,7 +86,15 @@ BUILTIN_DEFAULTS: dict[str, Any] = {
     "counter": _default(FeedSettings, "counter"),
     "register_size": _default(FeedSettings, "register_size"),
     "stale_intervals": _default(MonitorConfig, "stale_intervals"),
+    # what a person reads about the feed (listings, the report, the alarm payload); no effect on detection
+    "description": None,
+    "unit": None,
+    "site": None,
+    "tag": None,
 }
+
+#: The feed's descriptive options (``timezone`` is also one, and steers the cycle search).
+METADATA_KEYS = ("description", "unit", "site", "tag", "timezone")
 
 #: TOML key -> resolved key (where they differ, the unit is added).
 RESOLVED_NAME = {"interval": "interval_s", "train_span": "train_span_s", "utc_offset": "utc_offset_s"}
@@ -228,6 +237,10 @@ FEED_CHECKS: dict[str, Checker] = {
     "counter": boolean,
     "register_size": _positive(),
     "stale_intervals": number(1),
+    "description": text(),
+    "unit": text(),
+    "site": text(),
+    "tag": text(),
 }
 FEED_KEYS = (*FEED_CHECKS, "limits")
 

@@ -190,6 +190,7 @@ from leadline.detector.errors import ConfigError, StoreError
 from . import feeds as config_feeds
 from .feeds import FeedOverride, cross_check, merge, read_options, read_override
 from .sources import CsvSourceConfig, MqttSourceConfig, TopicConfig, read_sources
+from .shelving import SHELVING_KEYS, ShelvingConfig, read_shelving
 from .values import (
     Bad,
     Problems,
@@ -210,7 +211,7 @@ _SHIFT_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_-]*\Z")
 _SHIFT_TIMES = re.compile(r"\s*(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*\Z")
 RESERVED_SHIFT_NAMES = ("last", "current", "timezone")
 
-TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts")
+TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts", "shelving")
 STORE_KEYS = ("url", "flush_interval_s", "flush_events", "retry_base_s", "retry_cap_s")
 REFIT_KEYS = ("every", "on_degraded", "window_points", "window_span", "workers")
 PUBLISH_KEYS = ("broker", "client_id", "topic_template", "status_topic_template", "max_queued_messages")
@@ -331,6 +332,8 @@ class Config:
     refit : RefitConfig
     publish : PublishConfig or None
     shifts : ShiftsConfig or None
+    shelving : ShelvingConfig
+        ``[shelving] max_duration``: the longest shelving (default 7 days).
     warnings : tuple of str
         Problems that do not stop the service.
     """
@@ -345,6 +348,7 @@ class Config:
     refit: RefitConfig = field(default_factory=RefitConfig)
     publish: PublishConfig | None = None
     shifts: ShiftsConfig | None = None
+    shelving: ShelvingConfig = field(default_factory=ShelvingConfig)
     warnings: tuple[str, ...] = ()
 
     @property
@@ -456,10 +460,11 @@ def _read(document: dict[str, Any], file: Path, problems: Problems) -> Config:
     refit = _read_refit(root.table("refit", REFIT_KEYS), problems)
     publish = _read_publish(root.table("publish", PUBLISH_KEYS), mqtt_sources, mqtt_names, problems)
     shifts = _read_shifts(root, problems)
+    shelving = read_shelving(root.table("shelving", SHELVING_KEYS))
     return Config(
         path=file, store=store, csv_sources=tuple(csv_sources), mqtt_sources=tuple(mqtt_sources),
         feed_defaults=defaults, feed_overrides=tuple(overrides), feed_defaults_given=given, refit=refit,
-        publish=publish, shifts=shifts,
+        publish=publish, shifts=shifts, shelving=shelving,
         warnings=tuple(problems.warnings),
     )
 

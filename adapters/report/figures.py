@@ -39,6 +39,8 @@ from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from typing import Any, Sequence
 
+from leadline.detector.durations import human_duration  # the one duration formatter of the package
+
 from ..store.connect import read_transaction
 from ..store.records import ModelRecord, Note, StoredEvent
 from ..store.shift_queries import active_at
@@ -57,21 +59,6 @@ RATE_BIN = timedelta(minutes=10)
 def plural(n: int, word: str, many: str | None = None) -> str:
     """``1 alarm``, ``2 alarms``, ``0 alarms`` (``many`` for irregular plurals)."""
     return f"{n:,} {word if n == 1 else (many or word + 's')}"
-
-
-def human_duration(seconds: float) -> str:
-    """``45 s``, ``17 min``, ``2 h 5 min``, ``3 d 0 h 17 min`` (rounded down to the minute)."""
-    s = max(0, int(seconds))
-    if s < 60:
-        return f"{s} s"
-    minutes = s // 60
-    d, rest = divmod(minutes, 1440)
-    h, m = divmod(rest, 60)
-    if d:
-        return f"{d} d {h} h {m} min"
-    if h:
-        return f"{h} h {m} min"
-    return f"{m} min"
 
 
 @dataclass(frozen=True)
@@ -355,14 +342,28 @@ class ShiftData:
     models: dict[tuple[str, int | None], ModelRecord | None]
     units: dict[str, str | None]
     store_url: str
+    #: Events of the window left out as events of shelved feeds (0 with ``include_shelved``).
+    shelved_hidden: int = 0
 
 
-def load_figures(store: Any, since: datetime, until: datetime) -> ShiftData:
-    """Read the window's events and what the figures need from ``store``."""
+def load_figures(store: Any, since: datetime, until: datetime, include_shelved: bool = False) -> ShiftData:
+    """Read the window's events and what the figures need from ``store``.
+
+    The events of shelved feeds (started while their feed was shelved) are
+    left out unless ``include_shelved``; ``ShiftData.shelved_hidden`` counts them.
+    """
+    from ..cli.shelving import split_shelved
+
     events = store.events(since=since, until=until)
     with read_transaction(store.engine, "reading standing events") as conn:
         standing = active_at(conn, until, STANDING_H)
         stale_active = active_at(conn, until, 0.0, rule="stale")
+    hidden = 0
+    if not include_shelved:
+        notes = store.shelving_notes()
+        events, hidden = split_shelved(events, notes)
+        standing, _ = split_shelved(standing, notes)
+        stale_active, _ = split_shelved(stale_active, notes)
     figures = compute_figures(events, since, until, standing, store.shelved_feeds(until), stale_active)
     incidents = group_incidents(figures.events, until)
     models: dict[tuple[str, int | None], ModelRecord | None] = {}
@@ -377,4 +378,6 @@ def load_figures(store: Any, since: datetime, until: datetime) -> ShiftData:
                 v = s.event.model_version
                 models[(feed_id, v)] = by_version.get(v, latest) if v is not None else latest
     units = {f.feed_id: f.unit for f in store.feeds()}
-    return ShiftData(figures, incidents, models, units, store.url)
+    # the unit the service last recorded (configured, or from the payloads) labels the plots' axes
+    units.update({fid: row.unit for fid, row in store.feed_status().items() if row.unit})
+    return ShiftData(figures, incidents, models, units, store.url, hidden)

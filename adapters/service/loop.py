@@ -29,7 +29,13 @@ One :class:`Service` owns the running parts and does, until it is asked to stop:
    commit;
 9. tell systemd (``Type=notify``, :mod:`.sd_notify`): READY=1 once the
    sources are started, WATCHDOG=1 from the loop, the summary as STATUS=,
-   STOPPING=1 at shutdown.
+   STOPPING=1 at shutdown;
+10. stage, with each commit, the status of every feed that changed since the
+    last one (state, last reading, source, learning progress) and, every
+    ``heartbeat_interval_s``, a heartbeat (start time, beat, pid, version),
+    which ``leadline status`` reads;
+11. publish no event of a shelved feed (it is stored all the same): the
+    shelving notes are read from the store every ``shelving_refresh_s``.
 
 :meth:`Service.request_stop` (wired to SIGTERM and SIGINT by ``leadline run``)
 stops the sources, drains what they still hold, flushes events and
@@ -67,6 +73,7 @@ if TYPE_CHECKING:
     from leadline.detector.engine import Engine
 
 from .backoff import Backoff
+from .feed_reports import FeedReports
 from .reject_summary import RejectSummary, stage_source_rejects
 
 logger = logging.getLogger("leadline.service")
@@ -87,7 +94,7 @@ def log_fields(message: str, **fields: Any) -> str:
     return " ".join(parts)
 
 
-class Service:
+class Service(FeedReports):
     """Wires sources, the engine, the store and an optional alarm publisher.
 
     Parameters
@@ -120,6 +127,19 @@ class Service:
         The link to systemd; None sends nothing.
     reject_log_interval_s : float
         At most one reject log line per source and reason this often.
+    heartbeat_interval_s : float
+        How often the service's heartbeat is staged (``leadline status``
+        takes a service as stopped after a few missed beats).
+    shelving_refresh_s : float
+        How often the shelved feeds are read again from the store.
+    service_name : str
+        The key of this service's heartbeat row.
+    metadata : callable, optional
+        ``metadata(feed_id) -> dict`` with the configured ``unit`` (and
+        ``description``, ``site``, ``tag``, ``timezone``): the unit a feed
+        starts with. A source may report units (``take_units()``, SenML
+        ``u``); a unit that differs from the one known is a ``unit_change``
+        event (warning, opened and closed at once).
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -129,7 +149,9 @@ class Service:
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
                  clock: Callable[[], datetime] | str = _utc_now, store_retry_base_s: float = 1.0,
                  store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
-                 reject_log_interval_s: float = 60.0) -> None:
+                 reject_log_interval_s: float = 60.0, heartbeat_interval_s: float = 5.0,
+                 shelving_refresh_s: float = 5.0, service_name: str = "leadline",
+                 metadata: Callable[[str], dict[str, Any]] | None = None) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -170,6 +192,21 @@ class Service:
         self._pending_readings = 0
         self.notifier = notifier
         self.reject_summary = RejectSummary(reject_log_interval_s)
+        self.heartbeat_interval_s = float(heartbeat_interval_s)
+        self.shelving_refresh_s = float(shelving_refresh_s)
+        self.service_name = service_name
+        self.started_at = _utc_now()
+        self._last_beat = float("-inf")
+        self._last_shelving_read = float("-inf")
+        self._shelved: dict[str, datetime] = {}
+        self._changed_feeds: set[str] = set()
+        #: The source name and the unit each feed was last seen with.
+        self.feed_sources: dict[str, str] = {}
+        self.feed_units: dict[str, str] = {}
+        self.events_withheld = 0
+        self.metadata = metadata
+        #: Called with the service from each loop turn (``run --replay`` shows progress with it; it throttles).
+        self.progress: Callable[[Service], None] | None = None
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -250,9 +287,19 @@ class Service:
 
     def _process(self, source: Source, readings: list[Reading]) -> None:
         for reading in readings:
+            if reading.feed_id not in self.feed_sources and self.metadata is not None:
+                unit = self.metadata(reading.feed_id).get("unit")
+                if unit:
+                    self.feed_units.setdefault(reading.feed_id, unit)
             self._handle(self.engine.process(reading), reading)
+            self._changed_feeds.add(reading.feed_id)
+            self.feed_sources[reading.feed_id] = source.name
             if self._latest_reading is None or reading.timestamp > self._latest_reading:
                 self._latest_reading = reading.timestamp
+        take_units = getattr(source, "take_units", None)  # optional: sources that carry units (SenML "u")
+        if callable(take_units):
+            for feed_id, unit in take_units().items():
+                self._note_unit(feed_id, unit, self._latest_reading or readings[-1].timestamp)
         for mark in source.durable_marks(readings):
             self.store.stage_offset(mark)
         self._pending_acks.append((source, readings))
@@ -272,6 +319,7 @@ class Service:
                                    peak_abs_z=event.peak_abs_z, model_version=event.model_version,
                                    detail=event.detail))
         for change in out.state_changes:
+            self._changed_feeds.add(change.feed_id)
             logger.info(log_fields("feed state", feed=change.feed_id, old=change.old, new=change.new,
                                    detail=change.detail))
         for request in out.refit_requests:
@@ -334,8 +382,11 @@ class Service:
         if now - self._last_summary >= self.summary_interval_s:
             self._summary(now)
         self.reject_summary.tick()
+        self._beat(now)
         if self.notifier is not None:
             self.notifier.heartbeat()
+        if self.progress is not None:
+            self.progress(self)
 
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
@@ -352,6 +403,7 @@ class Service:
         backoff = self.store_backoff
         if not (force or backoff.ready()):
             return
+        self._stage_feed_status()
         try:
             self.store.flush()
         except StoreError as exc:
@@ -372,6 +424,10 @@ class Service:
         if self.publisher is not None and events:
             try:
                 for event in events:
+                    if self.shelved(event.feed_id):
+                        self.events_withheld += 1  # recorded, not published (ISA-18.2 shelving)
+                        logger.debug(log_fields("not published: feed shelved", feed=event.feed_id, rule=event.rule))
+                        continue
                     self.publisher.publish(event)
             except LeadlineError as exc:
                 logger.warning(log_fields("alarm publishing failed", error=str(exc), events=len(events)))

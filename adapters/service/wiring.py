@@ -140,12 +140,28 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
         from ..sinks.alarm_publisher import MqttAlarmPublisher
 
         publisher = MqttAlarmPublisher(config.publisher_settings(), config.publish.topic_template,
-                                       config.publish.status_topic_template, config.publish.max_queued_messages)
+                                       config.publish.status_topic_template, config.publish.max_queued_messages,
+                                       metadata=feed_metadata_of(config))
         publisher.start()
     workers = config.refit.workers if refit_workers is None else refit_workers
     return Service(engine=engine, store=store, sources=sources, publisher=publisher, refit_workers=workers,
                    clock="readings" if replay else _wall_clock, store_retry_base_s=config.store.retry_base_s,
-                   store_retry_cap_s=config.store.retry_cap_s)
+                   store_retry_cap_s=config.store.retry_cap_s, metadata=feed_metadata_of(config))
+
+
+def feed_metadata_of(config: Config):
+    """``metadata(feed_id)``: the feed's configured description, unit, site, tag and time zone (cached)."""
+    from ..config.feeds import METADATA_KEYS
+
+    cache: dict[str, dict] = {}
+
+    def metadata(feed_id: str) -> dict:
+        if feed_id not in cache:
+            options = config.feed_settings(feed_id)
+            cache[feed_id] = {k: options.get(k) for k in METADATA_KEYS}
+        return cache[feed_id]
+
+    return metadata
 
 
 def _wall_clock():

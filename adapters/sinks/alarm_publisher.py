@@ -69,9 +69,13 @@ def _iso(moment: datetime | None) -> str | None:
     return None if moment is None else moment.astimezone(timezone.utc).isoformat()
 
 
-def event_payload(event: AlarmEvent) -> dict[str, Any]:
-    """The JSON object published for ``event`` (NaN becomes null)."""
-    return {
+def event_payload(event: AlarmEvent, metadata: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The JSON object published for ``event`` (NaN becomes null).
+
+    ``metadata``: the feed's configured ``description``, ``unit``, ``site``,
+    ``tag`` and ``timezone``, added as a ``feed`` member when any is set.
+    """
+    payload = {
         "feed_id": event.feed_id,
         "rule": event.rule,
         "severity": event.severity,
@@ -88,6 +92,12 @@ def event_payload(event: AlarmEvent) -> dict[str, Any]:
         "detail": event.detail,
         "caution": event.caution,
     }
+    described = {k: v for k, v in (metadata or {}).items() if v is not None}
+    if described:
+        caution = payload.pop("caution")
+        payload["feed"] = described
+        payload["caution"] = caution
+    return payload
 
 
 class MqttAlarmPublisher:
@@ -113,6 +123,7 @@ class MqttAlarmPublisher:
         event_topic: str = "leadline/alarms/{feed}/{rule}",
         status_topic: str = "leadline/status/{feed}",
         max_queued_messages: int = 10_000,
+        metadata: Any = None,
     ):
         _check_template(event_topic, _EVENT_FIELDS, "event_topic")
         _check_template(status_topic, ("feed",), "status_topic")
@@ -120,6 +131,8 @@ class MqttAlarmPublisher:
         self.event_topic = event_topic
         self.status_topic = status_topic
         self.max_queued_messages = max_queued_messages
+        #: ``metadata(feed_id) -> dict`` (description, unit, site, tag, timezone), or None.
+        self.metadata = metadata
         self._client: mqtt.Client | None = None
         self._lock = threading.Lock()
         self._active: dict[str, dict[tuple[str, datetime], AlarmEvent]] = {}
@@ -157,7 +170,8 @@ class MqttAlarmPublisher:
             else:
                 active.pop(key, None)
             status = self._status_payload(event.feed_id)
-        self._send(topic, event_payload(event), retain=False)
+        meta = self.metadata(event.feed_id) if self.metadata is not None else None
+        self._send(topic, event_payload(event, meta), retain=False)
         self._send(self._topic(self.status_topic, feed=event.feed_id), status, retain=True)
 
     def flush(self, timeout_s: float) -> bool:

@@ -262,6 +262,9 @@ class MqttSubscriber:
         self._session = 0
         self._route_cache = RouteCache(route_cache_bytes)
         self._lock = threading.Lock()
+        #: The latest unit each feed's payloads gave (SenML "u"/"bu"), until :meth:`take_units`.
+        self._units: dict[str, str] = {}
+        self._units_lock = threading.Lock()
         self._seq = itertools.count(1)
         self._pending: dict[int, _Pending] = {}
         self._pending_keys: dict[tuple[str, datetime], int] = {}
@@ -327,6 +330,12 @@ class MqttSubscriber:
 
     def take_rejects(self) -> list[RejectSample]:
         return self._rejects.take()
+
+    def take_units(self) -> dict[str, str]:
+        """The unit each feed's payloads gave since the last call (the latest per feed)."""
+        with self._units_lock:
+            units, self._units = self._units, {}
+        return units
 
     def take_reject_counts(self) -> list[RejectDelta]:
         """Exact reject counts per reason since the last call (the samples are capped)."""
@@ -494,6 +503,9 @@ class MqttSubscriber:
         arrival: datetime | None = None
         for value in values:
             feed_id = feed if value.name is None else (f"{feed}/{value.name}" if feed else value.name)
+            if value.unit:
+                with self._units_lock:
+                    self._units[feed_id] = value.unit
             timestamp = value.timestamp
             if timestamp is None:
                 if arrival is None:

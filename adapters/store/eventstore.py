@@ -38,6 +38,8 @@ from .handle import StoreHandle, require_text as _require_text, require_utc as _
 from .migrations import ensure_schema
 from .reads import EventQueries
 from .dialects import insert_for
+from .feed_status import FeedStatusRow, Heartbeat
+from .queries import shelved_feeds
 from .writer import WriteBuffer, write_buffer
 
 
@@ -239,6 +241,30 @@ class EventWriter(StoreHandle):
         last = _require_utc("last_seen", last_seen)
         with self._lock:
             self._buffer.add_reject_count(source, reason, count, first, last)
+
+    def stage_feed_status(self, row: FeedStatusRow) -> None:
+        """Stage a feed's status (the latest staged one per feed wins); it commits with the next flush."""
+        self._check_open()
+        _require_text("feed_id", row.feed_id)
+        if row.last_reading_at is not None:
+            _require_utc("last_reading_at", row.last_reading_at)
+        with self._lock:
+            self._buffer.feed_status[row.feed_id] = row
+
+    def shelving_in_force(self, now: datetime) -> dict[str, datetime]:
+        """The feeds shelved at ``now`` (UTC) and the end of each shelving, read from the notes."""
+        self._check_open()
+        now = _require_utc("now", now)
+        return {n.feed_id: n.expires_at for n in self._read("reading shelving", shelved_feeds, now)}
+
+    def stage_heartbeat(self, beat: Heartbeat) -> None:
+        """Stage the service's heartbeat (the latest staged one wins)."""
+        self._check_open()
+        _require_text("service", beat.service)
+        _require_utc("started_at", beat.started_at)
+        _require_utc("beat_at", beat.beat_at)
+        with self._lock:
+            self._buffer.heartbeat = beat
 
     def flush(self) -> int:
         """Commit everything staged in ONE transaction; return the events written.

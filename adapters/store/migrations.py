@@ -61,10 +61,18 @@ def _upgrade_2_to_3(conn: Connection) -> None:
     schema.build_metadata(3).tables["evidence"].create(conn)
 
 
+def _add_feed_status(conn: Connection) -> None:
+    """Add ``feed_status`` and ``service_heartbeat`` (what ``leadline status`` shows of a running service)."""
+    md = schema.build_metadata(4)
+    md.tables["feed_status"].create(conn)
+    md.tables["service_heartbeat"].create(conn)
+
+
 #: ``UPGRADES[v]`` turns a version ``v - 1`` database into version ``v``.
 UPGRADES: dict[int, tuple[str, Callable[[Connection], None]]] = {
     2: ("events.start_hour and ix_events_hour for alarm counts per hour", _upgrade_1_to_2),
     3: ("evidence: readings and forecasts around each alarm episode", _upgrade_2_to_3),
+    4: ("feed_status and service_heartbeat: each feed's state and the service's liveness", _add_feed_status),
 }
 
 _DESCRIPTIONS = {1: "first schema"} | {v: d for v, (d, _) in UPGRADES.items()}

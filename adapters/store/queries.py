@@ -251,6 +251,13 @@ def shelved_feeds(conn: Connection, now: datetime) -> list[Note]:
     return [_to_note(r) for r in latest.values() if r.expires_at > now]
 
 
+def shelving_notes(conn: Connection) -> list[Note]:
+    """Every shelving note (the audit trail keeps them all), by feed, then time."""
+    n = schema.event_notes
+    rows = conn.execute(select(n).where(n.c.kind == "shelve").order_by(n.c.feed_id, n.c.at, n.c.id)).all()
+    return [_to_note(r) for r in rows]
+
+
 def feeds(conn: Connection) -> list[Feed]:
     f = schema.feeds
     return [

@@ -21,6 +21,7 @@ from leadline.detector.evidence import EvidenceRecord
 
 from . import queries, schema
 from .evidence import read_evidence
+from .feed_status import FeedStatusRow, Heartbeat, read_feed_status, read_heartbeats
 from .connect import write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
@@ -160,6 +161,10 @@ class EventQueries(StoreHandle):
         """The shelving note in force of every feed shelved at ``now``."""
         return self._read("listing shelved feeds", queries.shelved_feeds, _require_utc("now", now))
 
+    def shelving_notes(self) -> list[Note]:
+        """Every shelving note ever written, by feed, then time (the audit trail of shelving)."""
+        return self._read("reading shelving notes", queries.shelving_notes)
+
     def reject_counts(self) -> list[RejectCount]:
         return self._read("reading reject counts", queries.reject_counts)
 
@@ -173,6 +178,14 @@ class EventQueries(StoreHandle):
 
     def feeds(self) -> list[Feed]:
         return self._read("listing feeds", queries.feeds)
+
+    def feed_status(self) -> dict[str, FeedStatusRow]:
+        """Each feed's status as the service last committed it, by feed id."""
+        return self._read("reading feed status", read_feed_status)
+
+    def heartbeats(self) -> list[Heartbeat]:
+        """The heartbeat of every service that wrote to this store, latest beat first."""
+        return self._read("reading service heartbeats", read_heartbeats)
 
     def latest_models(self) -> dict[str, ModelRecord]:
         """The latest model record of each feed."""

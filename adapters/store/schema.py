@@ -27,6 +27,14 @@ Tables
     The readings and forecasts around each alarm episode, keyed like the
     event (start, feed, rule); packed by :mod:`.evidence`. Added in schema
     version 3.
+``feed_status``
+    One row per feed as the running service last saw it: lifecycle state,
+    last reading (time, value), source, unit, learning progress; upserted
+    with the flushes, only for the feeds that changed. Added in schema
+    version 4 (step ``_add_feed_status``).
+``service_heartbeat``
+    One row per running service: start time, last beat, beat interval,
+    process id, leadline version. Added in schema version 4.
 
 Indexes (and the query each one serves)
 ---------------------------------------
@@ -73,7 +81,7 @@ from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
 from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
 NOTE_KINDS = ("ack", "comment", "shelve")
 
@@ -112,7 +120,8 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     1970-01-01T00:00Z of ``start_at``, written by the store) and its
     index ``ix_events_hour``, so counting alarms per hour is an index-only
     scan on both backends instead of a per-row date expression. Version 3
-    added the ``evidence`` table.
+    added the ``evidence`` table; version 4 ``feed_status`` and
+    ``service_heartbeat``.
     """
     if not 1 <= version <= SCHEMA_VERSION:
         raise ValueError(f"schema version must be 1..{SCHEMA_VERSION}, got {version}")
@@ -266,7 +275,39 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     Index("ix_reject_samples_source", samples.c.source, samples.c.reason, samples.c.id)
     if version >= 3:
         _evidence_table(md)
+    if version >= 4:
+        feed_status_tables(md)
     return md
+
+
+def feed_status_tables(md: MetaData) -> tuple[Table, Table]:
+    """``feed_status`` (one row per feed, written by the service) and
+    ``service_heartbeat`` (one row per running service)."""
+    status = Table(
+        "feed_status",
+        md,
+        Column("feed_id", Text, ForeignKey("feeds.feed_id"), primary_key=True),
+        Column("state", Text, nullable=False),
+        _utc("last_reading_at", nullable=True),
+        Column("last_value", NanFloat()),
+        Column("source", Text),
+        Column("unit", Text),
+        Column("interval_s", Double),
+        Column("learning_have", Integer),
+        Column("learning_need", Integer),
+        _utc("updated_at"),
+    )
+    beat = Table(
+        "service_heartbeat",
+        md,
+        Column("service", Text, primary_key=True),
+        _utc("started_at"),
+        _utc("beat_at"),
+        Column("beat_interval_s", Double, nullable=False),
+        Column("pid", Integer, nullable=False),
+        Column("version", Text, nullable=False),
+    )
+    return status, beat
 
 
 def _evidence_table(md: MetaData) -> Table:
@@ -302,6 +343,8 @@ source_offsets = metadata.tables["source_offsets"]
 reject_counts = metadata.tables["reject_counts"]
 reject_samples = metadata.tables["reject_samples"]
 evidence = metadata.tables["evidence"]
+feed_status = metadata.tables["feed_status"]
+service_heartbeat = metadata.tables["service_heartbeat"]
 
 #: Every table name the store owns (to recognise a foreign or damaged schema).
 TABLE_NAMES = frozenset(metadata.tables)

@@ -43,6 +43,7 @@ from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
 from .evidence import write_evidence
+from .feed_status import FeedStatusRow, Heartbeat, write_feed_status, write_heartbeat
 from .coltypes import dumps_json
 from .dialects import driver_time_for, insert_for
 
@@ -89,9 +90,13 @@ class WriteBuffer:
         self.rejects: dict[tuple[str, str], _RejectTally] = {}
         #: Evidence records per event key; the latest staged one wins.
         self.evidence: dict[tuple[str, str, datetime], EvidenceRecord] = {}
+        #: The latest staged status per feed, and the latest heartbeat.
+        self.feed_status: dict[str, FeedStatusRow] = {}
+        self.heartbeat: Heartbeat | None = None
 
     def __len__(self) -> int:
-        return len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
+        return (len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
+                + len(self.feed_status) + (self.heartbeat is not None))
 
     def add_event(self, ev: AlarmEvent) -> None:
         """Stage ``ev``, merged with a staged copy of the same episode.
@@ -304,7 +309,8 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
         The number of event rows upserted.
     """
     insert = insert_for(conn)
-    feed_ids = {k[0] for k in buf.events} | set(buf.checkpoints) | {k[0] for k in buf.evidence}
+    feed_ids = ({k[0] for k in buf.events} | set(buf.checkpoints) | {k[0] for k in buf.evidence}
+                | set(buf.feed_status))
     if feed_ids:
         stmt = insert(schema.feeds).on_conflict_do_nothing(index_elements=[schema.feeds.c.feed_id])
         conn.execute(stmt, [{"feed_id": f, "created_at": now} for f in sorted(feed_ids)])
@@ -359,6 +365,10 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
 
     if buf.rejects:
         _write_rejects(conn, insert, buf)
+    if buf.feed_status:
+        write_feed_status(conn, insert, buf.feed_status.values(), now)
+    if buf.heartbeat is not None:
+        write_heartbeat(conn, insert, buf.heartbeat)
     return len(buf.events)
 
 

@@ -206,7 +206,7 @@ class FlatlineRule(RuleBase):
         self._log_p += math.log(p) if p > 0 else -math.inf
         if self._log_p < self._log_limit and self._run > habitual_run:
             shown = "0" if self._log_p == -math.inf else f"{math.exp(self._log_p):.2g}"
-            detail = (f"reading {y:.6g} repeated {self._run} times (within {self.half_width:.3g}); "
+            detail = (f"reading {y:.6g} repeated {self._run} time{'' if self._run == 1 else 's'} (within {self.half_width:.3g}); "
                       f"probability of such a run under the model {shown} < {self.run_probability_limit:.2g}")
             return Assessment("alarm", False, a, detail)
         return Assessment(None, False, a)
