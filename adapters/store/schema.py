@@ -73,9 +73,12 @@ from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
 from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
-NOTE_KINDS = ("ack", "comment", "shelve")
+#: Note kinds at each schema version: "accept" (an operator accepts a
+#: level shift as the feed's new normal) came with version 4.
+NOTE_KINDS_V1 = ("ack", "comment", "shelve")
+NOTE_KINDS = NOTE_KINDS_V1 + ("accept",)
 
 _NAMING = {
     "ix": "ix_%(table_name)s_%(column_0_name)s",
@@ -112,7 +115,9 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     1970-01-01T00:00Z of ``start_at``, written by the store) and its
     index ``ix_events_hour``, so counting alarms per hour is an index-only
     scan on both backends instead of a per-row date expression. Version 3
-    added the ``evidence`` table.
+    added the ``evidence`` table. Version 4 added ``events.incident_start``
+    (the start of the event's incident, :mod:`leadline.detector.incidents`),
+    the note kind ``accept`` and the ``service_marks`` table.
     """
     if not 1 <= version <= SCHEMA_VERSION:
         raise ValueError(f"schema version must be 1..{SCHEMA_VERSION}, got {version}")
@@ -178,6 +183,10 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
         # Nullable only because ALTER TABLE ADD COLUMN cannot add a NOT NULL
         # column without a default; the writer always fills it.
         event_columns.append(Column("start_hour", BigInteger))
+    if version >= 4:
+        # NULL for an event stored without an incident (and for every event
+        # stored before version 4): it is then an incident of its own.
+        event_columns.append(_utc("incident_start", nullable=True))
     events = Table(
         "events",
         md,
@@ -195,7 +204,7 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     if version >= 2:
         Index("ix_events_hour", events.c.start_hour, events.c.severity)
 
-    kinds = ", ".join(f"'{k}'" for k in NOTE_KINDS)
+    kinds = ", ".join(f"'{k}'" for k in (NOTE_KINDS if version >= 4 else NOTE_KINDS_V1))
     notes = Table(
         "event_notes",
         md,
@@ -266,7 +275,20 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     Index("ix_reject_samples_source", samples.c.source, samples.c.reason, samples.c.id)
     if version >= 3:
         _evidence_table(md)
+    if version >= 4:
+        _service_marks_table(md)
     return md
+
+
+def _service_marks_table(md: MetaData) -> Table:
+    """``service_marks``: one named integer per row (e.g. the last accept note applied)."""
+    return Table(
+        "service_marks",
+        md,
+        Column("name", Text, primary_key=True),
+        Column("value", BigInteger, nullable=False),
+        _utc("updated_at"),
+    )
 
 
 def _evidence_table(md: MetaData) -> Table:
@@ -302,6 +324,7 @@ source_offsets = metadata.tables["source_offsets"]
 reject_counts = metadata.tables["reject_counts"]
 reject_samples = metadata.tables["reject_samples"]
 evidence = metadata.tables["evidence"]
+service_marks = metadata.tables["service_marks"]
 
 #: Every table name the store owns (to recognise a foreign or damaged schema).
 TABLE_NAMES = frozenset(metadata.tables)
