@@ -141,6 +141,16 @@ class EventSink(Protocol):
                      window_end: datetime, reason: str) -> int:
         """Record one fit at once; return its version (1, 2, ... per feed)."""
 
+    def stage_mark(self, name: str, value: int) -> None:
+        """Stage a named service mark (the last accept note applied), to commit with the events."""
+
+    def mark(self, name: str) -> int | None:
+        """The committed value of a service mark, or None."""
+
+    def accept_notes_after(self, note_id: int) -> list[Any]:
+        """The committed ``accept`` notes with an id above ``note_id``, oldest first
+        (:class:`~leadline.adapters.store.records.AcceptNote`)."""
+
     def flush_due(self, now_monotonic: float | None = None) -> bool:
         """True when what is staged should be committed now."""
 

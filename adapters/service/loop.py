@@ -66,6 +66,7 @@ from ..ports import AlarmPublisher, EventSink, Source
 if TYPE_CHECKING:
     from leadline.detector.engine import Engine
 
+from .accepts import AcceptPoller
 from .backoff import Backoff
 from .reject_summary import RejectSummary, stage_source_rejects
 
@@ -120,6 +121,8 @@ class Service:
         The link to systemd; None sends nothing.
     reject_log_interval_s : float
         At most one reject log line per source and reason this often.
+    accept_poll_interval_s : float
+        How often the store is asked for new ``accept`` notes (:mod:`.accepts`).
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -129,7 +132,7 @@ class Service:
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
                  clock: Callable[[], datetime] | str = _utc_now, store_retry_base_s: float = 1.0,
                  store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
-                 reject_log_interval_s: float = 60.0) -> None:
+                 reject_log_interval_s: float = 60.0, accept_poll_interval_s: float = 5.0) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -170,6 +173,8 @@ class Service:
         self._pending_readings = 0
         self.notifier = notifier
         self.reject_summary = RejectSummary(reject_log_interval_s)
+        #: The operators' accept notes, applied to the engine (:mod:`.accepts`).
+        self.accepts = AcceptPoller(store, accept_poll_interval_s)
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -326,6 +331,8 @@ class Service:
         if now - self._last_tick >= self.tick_interval_s:
             self._last_tick = now
             self._handle(self.engine.tick(self.clock()))
+        if self.accepts.due(now):
+            self._apply_accepts(now)
         if now - self._last_checkpoint >= self.checkpoint_interval_s:
             self._stage_checkpoints()
             self._commit()
@@ -336,6 +343,17 @@ class Service:
         self.reject_summary.tick()
         if self.notifier is not None:
             self.notifier.heartbeat()
+
+    def _apply_accepts(self, now: float) -> None:
+        """New accept notes to the engine; the checkpoints staged with the mark, committed at once."""
+        try:
+            applied = self.accepts.poll(self.engine, now, self._handle)
+        except StoreError as exc:
+            logger.warning(log_fields("accept notes not read", error=str(exc)))
+            return
+        if applied:
+            self._stage_checkpoints()
+            self._commit()
 
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():
