@@ -51,6 +51,7 @@ import numpy as np
 from .durations import WEEK_S
 from .fitting import FittedModel, fit
 from .rules import AlarmLimits, budget_thresholds, sigma_thresholds
+from .rules.drift import drift_options, with_drift
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 
@@ -129,16 +130,21 @@ def thresholds_from_config(fitted: FittedModel, values: np.ndarray, interval_s: 
         the flatline resolution from its readings.
     interval_s : float
     config : dict
-        ``mode`` (``"budget"`` or ``"sigma"``), ``false_alarms_per_week``
+        ``mode`` (``"budget"`` or ``"sigma"``); the drift rule is switched
+        on for a model with differencing (:func:`~.rules.drift.drift_options`), ``false_alarms_per_week``
         (budget mode), and optionally ``sigma_limits`` and ``budget_options``
         (:meth:`~leadline.detector.feed_settings.FeedSettings.thresholds_config`).
     """
     if config.get("mode") == "sigma":
-        return sigma_thresholds(**config.get("sigma_limits", {}))
-    values = np.asarray(values, dtype=float)
-    return budget_thresholds(fitted.standardized_residuals, interval_s=interval_s,
-                             false_alarms=config["false_alarms_per_week"], per_s=WEEK_S,
-                             values=values[np.isfinite(values)], **config.get("budget_options", {}))
+        limits = sigma_thresholds(**drift_options(config.get("sigma_limits"), fitted.spec))
+    else:
+        values = np.asarray(values, dtype=float)
+        limits = budget_thresholds(fitted.standardized_residuals, interval_s=interval_s,
+                                   false_alarms=config["false_alarms_per_week"], per_s=WEEK_S,
+                                   values=values[np.isfinite(values)],
+                                   **drift_options(config.get("budget_options"), fitted.spec))
+    # the drift rule needs the model itself (only for d + D >= 1): :mod:`.rules.drift`
+    return with_drift(limits, fitted.spec, fitted.system)
 
 
 def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[str, Any]]:
