@@ -85,6 +85,7 @@ BUILTIN_DEFAULTS: dict[str, Any] = {
     "counter": _default(FeedSettings, "counter"),
     "register_size": _default(FeedSettings, "register_size"),
     "stale_intervals": _default(MonitorConfig, "stale_intervals"),
+    "incident_gap_slots": _default(FeedSettings, "incident_gap_slots"),
 }
 
 #: TOML key -> resolved key (where they differ, the unit is added).
@@ -228,6 +229,7 @@ FEED_CHECKS: dict[str, Checker] = {
     "counter": boolean,
     "register_size": _positive(),
     "stale_intervals": number(1),
+    "incident_gap_slots": integer(0),
 }
 FEED_KEYS = (*FEED_CHECKS, "limits")
 

@@ -122,6 +122,8 @@ Schema
     counter                 bool      a cumulative register: readings become interval deltas
     register_size           number    counter feeds: the register rolls over to 0 at this value
     stale_intervals         number    silence, in intervals, before ``stale`` is raised (default 5)
+    incident_gap_slots      integer   events of a feed this many intervals apart or closer are one
+                                      incident (default 12)
     ======================  ========  ==========================================================
 
     An override also has ``match``: a glob on the feed id (``"marrowby/flow/*"``)
