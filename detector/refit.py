@@ -51,7 +51,7 @@ import numpy as np
 from .durations import WEEK_S
 from .fitting import FittedModel, fit
 from .rules import AlarmLimits, budget_thresholds, sigma_thresholds
-from .rules.drift import drift_options, with_drift
+from .rules.drift import complete_section, drift_options
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 
@@ -145,6 +145,13 @@ def thresholds_from_config(fitted: FittedModel, values: np.ndarray, interval_s: 
                                    **drift_options(config.get("budget_options"), fitted.spec))
     # the drift rule needs the model itself (only for d + D >= 1): :mod:`.rules.drift`
     return with_drift(limits, fitted.spec, fitted.system)
+
+
+def with_drift(limits: AlarmLimits, spec: ModelSpec, system: Any, seed: int = 0) -> AlarmLimits:
+    """``limits`` with the drift section completed for this model (:func:`~.rules.drift.complete_section`)."""
+    data = limits.to_json()
+    data["drift"] = complete_section(data.get("drift"), spec, system, seed)
+    return AlarmLimits.from_json(data)
 
 
 def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[str, Any]]:

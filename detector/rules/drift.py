@@ -268,15 +268,6 @@ ENTRY = RuleEntry(
 )
 
 
-def with_drift(limits: Any, spec: Any, system: LinearSystem, seed: int = 0) -> Any:
-    """``limits`` (AlarmLimits) with the drift section completed for this model (:func:`complete_section`)."""
-    from .limits import AlarmLimits
-
-    data = limits.to_json()
-    data["drift"] = complete_section(data.get("drift"), spec, system, seed)
-    return AlarmLimits.from_json(data)
-
-
 def drift_options(options: dict[str, Any] | None, spec: Any) -> dict[str, Any]:
     """The limits options with the drift switched on for a model with differencing, off otherwise
     (unless the options name a horizon themselves)."""
