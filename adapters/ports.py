@@ -188,6 +188,15 @@ class EventSink(Protocol):
 
     def shelving_in_force(self, now: datetime) -> dict[str, datetime]:
         """The feeds shelved at ``now`` and until when, from the committed shelving notes."""
+    def stage_mark(self, name: str, value: int) -> None:
+        """Stage a named service mark (the last accept note applied), to commit with the events."""
+
+    def mark(self, name: str) -> int | None:
+        """The committed value of a service mark, or None."""
+
+    def accept_notes_after(self, note_id: int) -> list[Any]:
+        """The committed ``accept`` notes with an id above ``note_id``, oldest first
+        (:class:`~leadline.adapters.store.records.AcceptNote`)."""
 
     def flush_due(self, now_monotonic: float | None = None) -> bool:
         """True when what is staged should be committed now."""

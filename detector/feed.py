@@ -48,7 +48,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field, replace
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 from typing import Any
 
 import numpy as np
@@ -62,6 +62,7 @@ from .events import AlarmEvent
 from .feed_settings import FeedSettings
 from .feed_state import encode_time
 from .fitting import FittedModel
+from .incidents import IncidentGrouper
 from .grid import GridCounts, GridCursor, infer_interval_s
 from .readings import Reading
 from .rules import AlarmLimits, FeedMonitor, MonitorConfig, per_point_rate
@@ -140,6 +141,20 @@ class FeedLifecycle:
         self.last_value = math.nan
         self.last_seen: datetime | None = None
         self.meter_resets = 0
+        self.incidents = IncidentGrouper()
+
+    # ------------------------------------------------------------- incidents
+    def tag_events(self, out: EngineOutput) -> EngineOutput:
+        """Give every event of ``out`` its ``incident_start`` (:mod:`.incidents`), in order.
+
+        The gap that still joins an event to the incident before it is
+        ``incident_gap_slots`` grid intervals (zero before the grid exists:
+        only ``meter_reset`` can happen then, and it stands alone).
+        """
+        if self.cursor is not None:
+            self.incidents.gap = timedelta(seconds=self.settings.incident_gap_slots * self.cursor.interval_s)
+        out.events[:] = [self.incidents.tag(ev) for ev in out.events]
+        return out
 
     # ------------------------------------------------------------- helpers
     def slot_epoch(self, slot: int) -> float:
@@ -157,6 +172,9 @@ class FeedLifecycle:
 
     # -------------------------------------------------------------- readings
     def process(self, reading: Reading, clock: datetime | None) -> EngineOutput:
+        return self.tag_events(self._process(reading, clock))
+
+    def _process(self, reading: Reading, clock: datetime | None) -> EngineOutput:
         out = EngineOutput()
         self.readings += 1
         ts = reading.timestamp
@@ -178,6 +196,9 @@ class FeedLifecycle:
 
     def tick(self, now: datetime) -> EngineOutput:
         out = EngineOutput()
+        return self.tag_events(self._tick(now, out))
+
+    def _tick(self, now: datetime, out: EngineOutput) -> EngineOutput:
         if self.state == "watching" and self.monitor is not None:
             out.events.extend(self.monitor.tick(now))
         return out
@@ -369,6 +390,10 @@ class FeedLifecycle:
 
     def install(self, fitted: FittedModel, model_version: int, reason: str,
                 thresholds: AlarmLimits | dict[str, Any] | None, request: RefitRequest | None) -> EngineOutput:
+        return self.tag_events(self._install(fitted, model_version, reason, thresholds, request))
+
+    def _install(self, fitted: FittedModel, model_version: int, reason: str,
+                 thresholds: AlarmLimits | dict[str, Any] | None, request: RefitRequest | None) -> EngineOutput:
         p = self.pending
         if p is None:
             raise DataError(f"feed {self.feed_id!r}: no refit is pending; install_model answers a RefitRequest")

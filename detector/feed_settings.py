@@ -82,6 +82,9 @@ class FeedSettings:
     timezone : str or None
         IANA time zone of the cycles "auto" looks for when no calendar is
         given (a calendar carries its own); None: UTC.
+    incident_gap_slots : int
+        An event opening at most this many grid intervals after the
+        feed's last event cleared joins its incident (:mod:`.incidents`).
 
     Raises
     ------
@@ -101,7 +104,7 @@ class FeedSettings:
     refit_window_points: int = 2000
     diagnostics_refit: bool = True
     threshold_mode: str = "budget"
-    false_alarms_per_week: float = 1.0
+    false_alarms_per_week: float = 0.2
     sigma_limits: dict[str, Any] | None = None
     budget_options: dict[str, Any] | None = None
     monitor: MonitorConfig = field(default_factory=MonitorConfig)
@@ -111,6 +114,7 @@ class FeedSettings:
     future_tolerance_s: float | None = 3600.0
     level: float = 0.95
     timezone: str | None = None
+    incident_gap_slots: int = 12
 
     def __post_init__(self) -> None:
         def bad(key: str, expected: str) -> ConfigError:
@@ -180,6 +184,9 @@ class FeedSettings:
             raise bad("future_tolerance_s", "a number >= 0 (seconds) or None")
         if not (_is_number(self.level) and 0 < self.level < 1):
             raise bad("level", "a number in (0, 1)")
+        if isinstance(self.incident_gap_slots, bool) or not isinstance(self.incident_gap_slots, int) \
+                or self.incident_gap_slots < 0:
+            raise bad("incident_gap_slots", "an integer >= 0 (grid intervals)")
         if self.timezone is not None:
             try:
                 zone_info(self.timezone)

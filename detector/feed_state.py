@@ -38,6 +38,10 @@ mismatch of structure, or a version this build does not read, is a
 Checkpoints written before the rules' state had its own layout hold the
 monitor as its attributes (``{"$object": "FeedMonitor", "attrs": ...}``);
 they are read too (:func:`_legacy_state`).
+
+The feed's incident grouping (:meth:`~leadline.detector.incidents.IncidentGrouper.state_dict`,
+its own version ``"v"``) is saved under ``"incidents"``; a checkpoint
+without it restores with no incident open, so the next event starts one.
 """
 
 from __future__ import annotations
@@ -322,6 +326,7 @@ def feed_checkpoint(feed: Any) -> bytes:
         "monitor_fingerprint": _fingerprint(feed.monitor.config),
         "monitor": monitor_state,
         "diagnostics": {"since_check": feed.diagnostics.since_check, "last": feed.diagnostics.last},
+        "incidents": feed.incidents.state_dict(),
         "last_diag_refit_slot": feed.last_diag_refit_slot,
         "refit_in_flight": in_flight,
         "last_refit_error": feed.last_refit_error,
@@ -453,6 +458,9 @@ def _feed_from_parts(new_feed: Callable[[str, Any], Any], feed_id: str, settings
         reason, full = header["refit_in_flight"]
         again = " (requested again after a restart)"
         feed.refit_due = (reason if reason.endswith(again) else reason + again, bool(full))
+    if header.get("incidents") is not None:  # absent from checkpoints taken before incidents were kept
+        feed.incidents.load_state(header["incidents"])
+    feed.tag_events(out)
     feed.state = "watching"
     out.state_changes.append(StateChange(
         feed_id, "new", "watching", feed.last_time or feed.at_last_slot(),

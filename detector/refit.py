@@ -52,6 +52,7 @@ from .durations import WEEK_S
 from .fitting import FittedModel, fit
 from .rules import AlarmLimits, budget_thresholds, sigma_thresholds
 from .rules.thresholds import with_training_readings
+from .rules.drift import complete_section, drift_options
 from .seasonality import CalendarTerms
 from .spec import ModelSpec
 
@@ -130,16 +131,28 @@ def thresholds_from_config(fitted: FittedModel, values: np.ndarray, interval_s: 
         resolution and repeat habits are learnt from its readings.
     interval_s : float
     config : dict
-        ``mode`` (``"budget"`` or ``"sigma"``), ``false_alarms_per_week``
+        ``mode`` (``"budget"`` or ``"sigma"``); the drift rule is switched
+        on for a model with differencing (:func:`~.rules.drift.drift_options`), ``false_alarms_per_week``
         (budget mode), and optionally ``sigma_limits`` and ``budget_options``
         (:meth:`~leadline.detector.feed_settings.FeedSettings.thresholds_config`).
     """
     values = np.asarray(values, dtype=float)  # missing slots stay NaN: they break runs of repeats
     if config.get("mode") == "sigma":
-        return with_training_readings(sigma_thresholds(**config.get("sigma_limits", {})), values)
-    return budget_thresholds(fitted.standardized_residuals, interval_s=interval_s,
-                             false_alarms=config["false_alarms_per_week"], per_s=WEEK_S,
-                             values=values, **config.get("budget_options", {}))
+        limits = with_training_readings(sigma_thresholds(**drift_options(config.get("sigma_limits"), fitted.spec)),
+                                        values)
+    else:
+        limits = budget_thresholds(fitted.standardized_residuals, interval_s=interval_s,
+                                   false_alarms=config["false_alarms_per_week"], per_s=WEEK_S,
+                                   values=values, **drift_options(config.get("budget_options"), fitted.spec))
+    # the drift rule needs the model itself (only for d + D >= 1): :mod:`.rules.drift`
+    return with_drift(limits, fitted.spec, fitted.system)
+
+
+def with_drift(limits: AlarmLimits, spec: ModelSpec, system: Any, seed: int = 0) -> AlarmLimits:
+    """``limits`` with the drift section completed for this model (:func:`~.rules.drift.complete_section`)."""
+    data = limits.to_json()
+    data["drift"] = complete_section(data.get("drift"), spec, system, seed)
+    return AlarmLimits.from_json(data)
 
 
 def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[str, Any]]:

@@ -135,7 +135,7 @@ def names(site: Site, ids: list[int]) -> list[str]:
 
 # ------------------------------------------------------------------------------ events: windows and filters
 def test_default_window_is_the_last_24_hours_oldest_first(site, capsys):
-    assert site.run("events") == 0
+    assert site.run("events", "--each-event") == 0
     out = capsys.readouterr().out
     assert names(site, listed_ids(out)) == ["earlier_spike", "night_cusum", "night_spike", "day_flatline"]
     lines = out.splitlines()
@@ -150,13 +150,13 @@ def test_default_window_is_the_last_24_hours_oldest_first(site, capsys):
 
 
 def test_since_is_inclusive_and_until_exclusive(site, capsys):
-    assert site.run("events", "--since", "2026-03-13T22:15Z", "--until", "2026-03-14T03:00Z") == 0
+    assert site.run("events", "--each-event", "--since", "2026-03-13T22:15Z", "--until", "2026-03-14T03:00Z") == 0
     assert names(site, listed_ids(capsys.readouterr().out)) == ["night_cusum"]
     # a local time without an offset is read in the [shifts] zone (GMT in March before the 29th)
-    assert site.run("events", "--since", "2026-03-14T03:00", "--until", "2026-03-14T07:00:01") == 0
+    assert site.run("events", "--each-event", "--since", "2026-03-14T03:00", "--until", "2026-03-14T07:00:01") == 0
     assert names(site, listed_ids(capsys.readouterr().out)) == ["night_spike", "day_flatline"]
     # a span back from now
-    assert site.run("events", "--since", "7d") == 0
+    assert site.run("events", "--each-event", "--since", "7d") == 0
     assert len(listed_ids(capsys.readouterr().out)) == 5
 
 
@@ -169,23 +169,23 @@ def test_since_is_inclusive_and_until_exclusive(site, capsys):
     (("--limit", "2"), ["earlier_spike", "night_cusum"]),
 ])
 def test_filters(site, capsys, args, expected):
-    assert site.run("events", *args) == 0
+    assert site.run("events", "--each-event", *args) == 0
     assert names(site, listed_ids(capsys.readouterr().out)) == expected
 
 
 def test_unacked_leaves_out_acknowledged_events(site, capsys):
     assert site.run("ack", str(site.ids["night_cusum"]), "--by", "R. Okonkwo") == 0
     capsys.readouterr()
-    assert site.run("events", "--unacked") == 0
+    assert site.run("events", "--each-event", "--unacked") == 0
     out = capsys.readouterr().out
     assert names(site, listed_ids(out)) == ["earlier_spike", "night_spike", "day_flatline"]
-    assert site.run("events", "--feed", FLOW1) == 0
+    assert site.run("events", "--each-event", "--feed", FLOW1) == 0
     row = row_of(capsys.readouterr().out, site.ids["night_cusum"])
     assert "R. Okonkwo" in row
 
 
 def test_unknown_rule_gets_a_hint(site, capsys):
-    assert site.run("events", "--rule", "spkie") == 0
+    assert site.run("events", "--each-event", "--rule", "spkie") == 0
     captured = capsys.readouterr()
     assert "No events." in captured.out and captured.out.splitlines()[-1] == CAUTION
     assert "no rule named 'spkie' is known" in captured.err and 'did you mean "spike"?' in captured.err
@@ -203,7 +203,7 @@ def test_unknown_rule_gets_a_hint(site, capsys):
     ("2026-03-09/night", [], "Events of the night shift of 2026-03-09 "),
 ])
 def test_shift_selectors(site, capsys, selector, expected, heading):
-    assert site.run("events", "--shift", selector) == 0
+    assert site.run("events", "--each-event", "--shift", selector) == 0
     out = capsys.readouterr().out
     assert names(site, listed_ids(out)) == expected
     assert out.splitlines()[0].startswith(heading)
@@ -211,14 +211,14 @@ def test_shift_selectors(site, capsys, selector, expected, heading):
 
 
 def test_shift_needs_shifts_and_excludes_since(site, capsys, tmp_path):
-    assert main(["events", "--shift", "last", "--db", str(site.db)]) == 2
+    assert main(["events", "--each-event", "--shift", "last", "--db", str(site.db)]) == 2
     assert "--shift needs a config file with a [shifts] table" in capsys.readouterr().err
-    assert site.run("events", "--shift", "last", "--since", "2h") == 2
+    assert site.run("events", "--each-event", "--shift", "last", "--since", "2h") == 2
     assert "--shift cannot be combined with --since" in capsys.readouterr().err
-    assert site.run("events", "--shift", "nigth") == 2
+    assert site.run("events", "--each-event", "--shift", "nigth") == 2
     err = capsys.readouterr().err
     assert "no shift named 'nigth'" in err and 'did you mean "night"?' in err
-    assert site.run("events", "--shift", "14.03.2026/day") == 2
+    assert site.run("events", "--each-event", "--shift", "14.03.2026/day") == 2
     assert "is not a date such as 2026-03-14" in capsys.readouterr().err
 
 
@@ -262,7 +262,7 @@ def test_dst_shift_through_the_command(tmp_path, monkeypatch, capsys):
             store.stage_event(AlarmEvent(FLOW1, "spike", "alarm", t(start)))
         store.flush()
     monkeypatch.setattr(review, "utc_now", lambda: datetime(2026, 3, 29, 12, 0, tzinfo=UTC))
-    assert main(["events", "--shift", "last", "--config", str(config), "--format", "json"]) == 0
+    assert main(["events", "--each-event", "--shift", "last", "--config", str(config), "--format", "json"]) == 0
     document = json.loads(capsys.readouterr().out)
     assert [e["start"] for e in document["events"]] == ["2026-03-29T04:30:00+00:00"]
     assert document["window"] == {"since": "2026-03-28T18:00:00+00:00", "until": "2026-03-29T05:00:00+00:00",
@@ -271,7 +271,7 @@ def test_dst_shift_through_the_command(tmp_path, monkeypatch, capsys):
 
 # ------------------------------------------------------------------------------ formats
 def test_csv_format(site, capsys):
-    assert site.run("events", "--format", "csv") == 0
+    assert site.run("events", "--each-event", "--format", "csv") == 0
     body = capsys.readouterr().out
     assert not body.startswith("\ufeff") and "\n#" not in body  # no trailer: every line is a record
     rows = list(csv.DictReader(io.StringIO(body)))
@@ -291,7 +291,7 @@ def test_csv_format(site, capsys):
 
 
 def test_json_format(site, capsys):
-    assert site.run("events", "--format", "json", "--feed", "marrowby/flow/*") == 0
+    assert site.run("events", "--each-event", "--format", "json", "--feed", "marrowby/flow/*") == 0
     document = json.loads(capsys.readouterr().out)
     assert list(document)[-1] == "caution" and document["caution"] == CAUTION
     assert document["count"] == 2 and document["filters"] == {"feed": "marrowby/flow/*", "rule": None,
@@ -307,7 +307,7 @@ def test_json_format(site, capsys):
 
 
 def test_json_events_carry_the_fields_of_the_published_alarm_payload(site, capsys):
-    assert site.run("events", "--format", "json") == 0
+    assert site.run("events", "--each-event", "--format", "json") == 0
     record = json.loads(capsys.readouterr().out)["events"][0]
     payload = event_payload(EVENTS["earlier_spike"])
     assert set(payload) <= set(record)
@@ -504,20 +504,20 @@ def test_export_with_notes(site, capsys, tmp_path):
 # ------------------------------------------------------------------------------ finding the store, reading times
 def test_a_missing_store_is_an_error_and_is_not_created(tmp_path, capsys):
     missing = tmp_path / "nope.db"
-    assert main(["events", "--db", str(missing)]) == 2
+    assert main(["events", "--each-event", "--db", str(missing)]) == 2
     assert f"no event store at {missing}" in capsys.readouterr().err
     assert not missing.exists()
 
 
 def test_db_option_reads_the_same_store(site, capsys):
-    assert main(["events", "--db", str(site.db), "--since", "7d"]) == 0
+    assert main(["events", "--each-event", "--db", str(site.db), "--since", "7d"]) == 0
     out = capsys.readouterr().out
     assert len(listed_ids(out)) == 5 and "times in UTC" in out
 
 
 def test_config_from_the_environment(site, capsys, monkeypatch):
     monkeypatch.setenv("LEADLINE_CONFIG", str(site.config))
-    assert main(["events", "--shift", "last"]) == 0
+    assert main(["events", "--each-event", "--shift", "last"]) == 0
     assert names(site, listed_ids(capsys.readouterr().out)) == ["night_cusum", "night_spike"]
 
 
@@ -534,7 +534,7 @@ def test_parse_time():
 
 
 def test_until_before_since_is_refused(site, capsys):
-    assert site.run("events", "--since", "2h", "--until", "3h") == 2
+    assert site.run("events", "--each-event", "--since", "2h", "--until", "3h") == 2
     assert "is not after --since" in capsys.readouterr().err
 
 

@@ -92,7 +92,7 @@ def hostile_store(tmp_path):
 
 def test_events_table_and_status_show_escapes_and_the_store_keeps_the_raw_id(hostile_store, capsys):
     db, feed = hostile_store
-    assert main(["events", "--db", str(db), "--since", "2026-05-01"]) == 0
+    assert main(["events", "--each-event", "--db", str(db), "--since", "2026-05-01"]) == 0
     out = capsys.readouterr().out
     assert "\x1b" not in out and "\u202e" not in out
     assert "pump\\x1b[31m7" in out

@@ -180,7 +180,7 @@ def test_run_stores_each_event_once_checkpoints_and_restarts_without_learning(si
     assert "new=learning" not in log[len(log) // 2:]
     assert spike_keys(folder) == EXPECTED
 
-    listed = subprocess.run([sys.executable, "-m", "leadline.adapters.cli", "events", "--config",
+    listed = subprocess.run([sys.executable, "-m", "leadline.adapters.cli", "events", "--each-event", "--config",
                              str(folder / "leadline.toml"), "--since", START.isoformat(), "--format", "json"],
                             capture_output=True, text=True, timeout=60)
     assert listed.returncode == 0, listed.stderr

@@ -14,6 +14,8 @@ from ..config.values import did_you_mean
 from .words import plural
 from .formats import write_csv, write_json, write_table
 from .shelving import add_include_option, split_shelved
+from .incident_formats import write_incidents_csv, write_incidents_json, write_incidents_table
+from ..store.queries import group_incidents
 from .review import Review, Window, add_store_options, add_window_options, iso, open_review, resolve_window
 
 #: The rule names the engine emits (AlarmEvent.rule: the rule registry and the engine's own kinds), for hints.
@@ -84,6 +86,17 @@ def write_listing(events: list, fmt: str, out: TextIO, rv: Review, window: Windo
     return write_table(events, out, rv.zone, heading(window, rv, filters))
 
 
+def write_incident_listing(events: list, fmt: str, out: TextIO, rv: Review, window: Window,
+                           filters: dict[str, Any]) -> int:
+    """The events grouped by incident, one line (record) per incident."""
+    incidents = group_incidents(events)
+    if fmt == "csv":
+        return write_incidents_csv(incidents, out)
+    if fmt == "json":
+        return write_incidents_json(incidents, out, window=window_record(window, rv), filters=filters)
+    return write_incidents_table(incidents, out, rv.zone, heading(window, rv, filters))
+
+
 def run_events(args, out: TextIO | None = None, err: TextIO | None = None) -> int:
     out = out or sys.stdout
     err = err or sys.stderr
@@ -97,7 +110,10 @@ def run_events(args, out: TextIO | None = None, err: TextIO | None = None) -> in
         hidden = hidden_shelved(rv, window, filters)
         if hidden and args.format == "table":
             print(f"{plural(hidden, 'event')} of shelved feeds not listed (--include-shelved lists them).", file=out)
-        write_listing(events, args.format, out, rv, window, filters)
+        if args.each_event:
+            write_listing(events, args.format, out, rv, window, filters)
+        else:
+            write_incident_listing(events, args.format, out, rv, window, filters)
     if not events and args.rule and args.rule not in KNOWN_RULES:
         hint = did_you_mean(args.rule, KNOWN_RULES)
         print(f"leadline events: no rule named {args.rule!r} is known to this build" + (f"; {hint}" if hint else "")
@@ -108,11 +124,15 @@ def run_events(args, out: TextIO | None = None, err: TextIO | None = None) -> in
 def add_parser(subparsers) -> None:
     p = subparsers.add_parser(
         "events", help="list alarm events of a time window or shift",
-        description="List the alarm events that started in a time window (default: the last 24 hours) or in "
-                    "one operator shift, oldest first, with who acknowledged them. Alarms are advisory.")
+        description="List the incidents whose events started in a time window (default: the last 24 hours) "
+                    "or in one operator shift, oldest first: one line per incident (the events of one feed "
+                    "that overlap or follow each other closely), with its rules and who acknowledged them; "
+                    "--each-event lists every event. Alarms are advisory.")
     add_store_options(p)
     add_window_options(p, DEFAULT_SINCE)
     add_filter_options(p)
     p.add_argument("--limit", type=int, metavar="N", help="at most N events (the oldest)")
+    p.add_argument("--each-event", action="store_true",
+                   help="one line per event instead of one per incident")
     p.add_argument("--format", choices=FORMATS, default="table", help="table (default), csv or json")
     p.set_defaults(handler=run_events)

@@ -18,7 +18,7 @@ Every format ends with the caution (:data:`~leadline.detector.events.CAUTION`):
 
 An event's fields in CSV and JSON carry the names of the alarm payload
 published over MQTT (:func:`leadline.adapters.sinks.alarm_publisher.event_payload`),
-plus ``id``, ``acknowledged``, ``notes``, ``created_at`` and ``updated_at``.
+plus ``incident_start`` (the key of the event's incident with its feed), ``id``, ``acknowledged``, ``notes``, ``created_at`` and ``updated_at``.
 Times are UTC ISO 8601; NaN is an empty CSV cell and JSON ``null``.
 
 Safe output: table cells and headings show control, escape and bidi
@@ -44,7 +44,7 @@ from .words import plural, show_abs_z, show_value
 from ..store.records import Note, StoredEvent
 
 CSV_COLUMNS = (
-    "id", "feed_id", "rule", "severity", "state", "start", "end", "peak_abs_z", "value_at_onset",
+    "id", "feed_id", "rule", "severity", "state", "start", "end", "incident_start", "peak_abs_z", "value_at_onset",
     "forecast_at_onset", "lower_at_onset", "upper_at_onset", "model_version", "acknowledged", "acknowledged_by",
     "acknowledged_at", "notes", "detail", "parameters", "created_at", "updated_at", "caution",
 )
@@ -84,6 +84,7 @@ def alarm_event_record(ev: AlarmEvent) -> dict[str, Any]:
         "state": "active" if ev.end is None else "cleared",
         "start": iso(ev.start),
         "end": iso(ev.end),
+        "incident_start": iso(ev.incident_start),
         "peak_abs_z": _number(ev.peak_abs_z),
         "value_at_onset": _number(ev.value_at_onset),
         "forecast_at_onset": _number(ev.forecast_at_onset),
@@ -99,6 +100,7 @@ def alarm_event_record(ev: AlarmEvent) -> dict[str, Any]:
 def event_record(stored: StoredEvent) -> dict[str, Any]:
     """One event as a JSON-ready dict."""
     record = alarm_event_record(stored.event)
+    record["incident_start"] = iso(stored.incident_start)
     caution = record.pop("caution")
     return {
         "id": stored.id,
@@ -137,6 +139,7 @@ def write_csv(events: Iterable[StoredEvent], out: TextIO, bom: bool = False) -> 
         t = csv_text_cell  # text cells only; the numeric ones stay numbers
         writer.writerow([
             r["id"], t(r["feed_id"]), t(r["rule"]), r["severity"], r["state"], r["start"], r["end"] or "",
+            r["incident_start"],
             _cell(r["peak_abs_z"]), _cell(r["value_at_onset"]), _cell(r["forecast_at_onset"]),
             _cell(r["lower_at_onset"]), _cell(r["upper_at_onset"]),
             "" if r["model_version"] is None else r["model_version"],

@@ -1,9 +1,14 @@
-"""``leadline ack``, ``leadline note`` and ``leadline shelve``: entries of the audit trail.
+"""``leadline ack``, ``note``, ``shelve`` and ``accept``: entries of the audit trail.
 
 Each appends a note to the store and never edits one: acknowledging again
 adds a second acknowledgement, and ``shelve FEED --end`` ends a shelving by
 a new note whose expiry is now (the latest shelving note of a feed decides).
 Notes carry the operator's name (``--by``) and the time of the command.
+
+``leadline accept EVENT`` accepts the level shift of a level-shift event as
+the feed's new normal: an ``accept`` note, which the running service
+applies to the engine within a few seconds
+(:mod:`leadline.adapters.service.accepts`).
 """
 
 from __future__ import annotations
@@ -143,6 +148,26 @@ def run_shelve(args, out: TextIO | None = None) -> int:
     return 0
 
 
+#: Rules whose episodes are not a move of the feed's level: nothing to accept.
+NOT_A_LEVEL_SHIFT = frozenset({"spike", "noise_burst", "flatline", "range", "stale", "meter_reset"})
+
+
+def run_accept(args, out: TextIO | None = None) -> int:
+    out = out or sys.stdout
+    with open_review(args) as rv:
+        (stored,) = _events(rv.store, [args.event], "accepted")
+        if stored.event.rule in NOT_A_LEVEL_SHIFT:
+            raise StoreError(f"{_describe(stored, rv.zone)} is not a level shift; nothing was accepted. Accept the "
+                             "level-shift event of its incident (ids: leadline events --each-event)")
+        before = next((n for n in stored.notes if n.kind == "accept"), None)
+        note_id = rv.store.add_note(stored.id, "accept", args.by, args.note, at=review.utc_now())
+        again = f"; it was already accepted by {before.operator} at {show_time(before.at, rv.zone)}" \
+            if before else ""
+        print(safe_text(f"Accepted the level of {_describe(stored, rv.zone)} as {args.by} (note {note_id}){again}. "
+                        "The running service applies it within seconds."), file=out)
+    return 0
+
+
 def _common(p, note_required: bool) -> None:
     add_store_options(p)
     p.add_argument("--by", required=True, metavar="NAME", help="who is writing this (kept in the audit trail)")
@@ -178,3 +203,11 @@ def add_parser(subparsers) -> None:
     group.add_argument("--end", action="store_true", help="end the feed's shelving now")
     _common(p, note_required=True)
     p.set_defaults(handler=run_shelve)
+
+    p = subparsers.add_parser("accept", help="accept a level shift as the feed's new normal",
+                              description="Accept the new level of a level-shift event as the feed's normal: "
+                                          "an entry in the audit trail with your name, the time and why; the "
+                                          "running service then stops alarming on that level.")
+    p.add_argument("event", type=int, metavar="EVENT", help="the level-shift event's id (leadline events)")
+    _common(p, note_required=True)
+    p.set_defaults(handler=run_accept)

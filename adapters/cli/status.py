@@ -6,6 +6,10 @@ fit's description), fit problems with advice, active alarms, and whether
 it is shelved and until when. Above the table: whether the service is
 running (its heartbeat is younger than a few beat intervals) and since when.
 
+Also the expected alarm load of the whole site: the false alarms per hour,
+per shift and per week that the feeds' budgets (stored with each model's
+limits) add up to, and the ``[site]`` budget when the config has one.
+
 The state, last reading, source and learning progress come from the
 ``feed_status`` table the running service writes with each flush; a feed
 the service has not reported on yet falls back to the model records
@@ -28,11 +32,16 @@ from typing import Any, TextIO
 
 from leadline.detector.events import CAUTION
 
+from ..config.site import alarm_load
+
 from . import review
 from .formats import write_aligned
 from .review import Review, add_store_options, iso, open_review, print_caution, show_age, show_time
 from ..sinks.safe_text import safe_text
 from .words import show_value
+
+#: Shift length assumed for the alarm load per shift when the config names no shifts (common practice).
+DEFAULT_SHIFT_HOURS = 8.0
 
 FEED_COLUMNS = ("FEED", "LAST READING", "AGE", "SOURCE", "STATE", "MODEL", "FIT PROBLEMS", "ACTIVE ALARMS",
                 "SHELVED UNTIL")
@@ -76,6 +85,7 @@ def collect(rv: Review, now: datetime) -> dict[str, Any]:
         active[stored.event.feed_id].append(stored)
     shelved = {n.feed_id: n for n in store.shelved_feeds(now)}
     feeds = []
+    budgets: list[float] = []
     for feed in store.feeds():
         model = models.get(feed.feed_id)
         row = status.get(feed.feed_id)
@@ -90,6 +100,9 @@ def collect(rv: Review, now: datetime) -> dict[str, Any]:
         learning = None
         if row is not None and row.state == "learning" and row.learning_need:
             learning = {"readings": row.learning_have or 0, "needed": row.learning_need}
+        per_week = _budget_per_week(model)
+        if per_week is not None:
+            budgets.append(per_week)
         feeds.append({
             "feed_id": feed.feed_id,
             "source": (row.source if row is not None and row.source else None) or feed.source,
@@ -116,7 +129,39 @@ def collect(rv: Review, now: datetime) -> dict[str, Any]:
     feeds.sort(key=lambda f: (not f["stale"], f["feed_id"]))
     rejects = [{"source": r.source, "reason": r.reason, "count": r.count, "first_seen": iso(r.first_seen),
                 "last_seen": iso(r.last_seen)} for r in store.reject_counts()]
-    return {"as_of": iso(now), "store": store.url, "service": service, "feeds": feeds, "rejects": rejects}
+    return {"as_of": iso(now), "store": store.url, "service": service, "feeds": feeds, "rejects": rejects,
+            "alarm_load": _load(rv, budgets)}
+
+
+def _budget_per_week(model: Any) -> float | None:
+    """The false alarms per week a model's budget-mode limits were set for (None in sigma mode)."""
+    budget = None if model is None else model.thresholds.get("budget")
+    if not budget or not budget.get("per_s"):
+        return None
+    return float(budget["false_alarms"]) * 7 * 86400.0 / float(budget["per_s"])
+
+
+def _shift_hours(rv: Review) -> tuple[float, str]:
+    shifts = None if rv.config is None or rv.config.shifts is None else rv.config.shifts.shifts
+    if not shifts:
+        return DEFAULT_SHIFT_HOURS, "assumed (no shifts configured)"
+    lengths = []
+    for shift in shifts:
+        start = shift.start.hour * 60 + shift.start.minute
+        end = shift.end.hour * 60 + shift.end.minute
+        lengths.append(((end - start) % (24 * 60) or 24 * 60) / 60.0)
+    return sum(lengths) / len(lengths), "the configured shifts' mean length"
+
+
+def _load(rv: Review, budgets: list[float]) -> dict[str, Any]:
+    """The false alarms the feeds' budgets imply for the whole site, and the site budget of the config."""
+    hours, source = _shift_hours(rv)
+    out: dict[str, Any] = {"feeds_with_budget": len(budgets), **alarm_load(budgets, hours), "shift_hours_from": source}
+    site = None if rv.config is None else rv.config.site
+    out["site"] = None if site is None else {
+        "false_alarms_per_operator_hour": site.false_alarms_per_operator_hour, "feeds": site.feeds,
+        "feeds_from": site.feeds_from, "per_feed_per_week": site.per_feed_per_week}
+    return out
 
 
 def _alarms_text(alarms: list[dict[str, Any]]) -> str:
@@ -179,6 +224,17 @@ def write_table(data: dict[str, Any], rv: Review, now: datetime, out: TextIO) ->
         print("No feeds in this store yet.", file=out)
     if any(f["state_from"] == "model records" for f in data["feeds"]):
         print("Feeds the service has not reported on yet: STATE is inferred from the model records.", file=out)
+    load = data["alarm_load"]
+    if load["feeds_with_budget"]:
+        print("", file=out)
+        print(f"Expected false alarms from the budgets of {load['feeds_with_budget']} feeds: "
+              f"{load['per_hour']:.3g} per hour, {load['per_shift']:.3g} per {load['shift_hours']:g}-hour shift "
+              f"({load['shift_hours_from']}), {load['per_week']:.3g} per week; real faults come on top.", file=out)
+    if load["site"] is not None:
+        site = load["site"]
+        print(f"Site budget: {site['false_alarms_per_operator_hour']:g} false alarms per operator hour shared "
+              f"by {site['feeds']} feeds ({site['feeds_from']}): {site['per_feed_per_week']:.3g} per feed per "
+              "week.", file=out)
     if data["rejects"]:
         print("", file=out)
         print("Rejected input:", file=out)

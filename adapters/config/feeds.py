@@ -91,6 +91,7 @@ BUILTIN_DEFAULTS: dict[str, Any] = {
     "unit": None,
     "site": None,
     "tag": None,
+    "incident_gap_slots": _default(FeedSettings, "incident_gap_slots"),
 }
 
 #: The feed's descriptive options (``timezone`` is also one, and steers the cycle search).
@@ -241,6 +242,7 @@ FEED_CHECKS: dict[str, Checker] = {
     "unit": text(),
     "site": text(),
     "tag": text(),
+    "incident_gap_slots": integer(0),
 }
 FEED_KEYS = (*FEED_CHECKS, "limits")
 

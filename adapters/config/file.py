@@ -107,7 +107,7 @@ Schema
                                       (default ``"14d"``)
     threshold_mode          text      ``"budget"`` (default: limits from a false-alarm budget) or
                                       ``"sigma"`` (fixed limits on z)
-    false_alarms_per_week   number    the budget (default 1.0); budget mode only
+    false_alarms_per_week   number    the budget (default 0.2, or the ``[site]`` share); budget mode only
     limits                  table     rule limits: sigma mode takes any of ``warning_abs_z`` (4),
                                       ``alarm_abs_z`` (5), ``clear_abs_z``, ``cusum_k`` (0.5),
                                       ``cusum_h`` (5), ``noise_window`` (24),
@@ -122,6 +122,8 @@ Schema
     counter                 bool      a cumulative register: readings become interval deltas
     register_size           number    counter feeds: the register rolls over to 0 at this value
     stale_intervals         number    silence, in intervals, before ``stale`` is raised (default 5)
+    incident_gap_slots      integer   events of a feed this many intervals apart or closer are one
+                                      incident (default 12)
     ======================  ========  ==========================================================
 
     An override also has ``match``: a glob on the feed id (``"marrowby/flow/*"``)
@@ -149,6 +151,12 @@ Schema
     status_topic_template   text      retained per-feed status, default ``"leadline/status/{feed}"``
     max_queued_messages     integer   publisher queue while the broker is away (default 10000)
     ======================  ========  ==========================================================
+
+``[site]`` (optional: the site's false-alarm budget, shared among its feeds)
+    ``false_alarms_per_operator_hour`` (required in the table) and
+    ``expected_feeds`` (default: the feeds the config names); each feed's
+    ``false_alarms_per_week`` default becomes rate x 168 / feeds
+    (:mod:`.site`). Setting ``feeds.defaults.false_alarms_per_week`` too is an error.
 
 ``[shifts]`` (optional: operator shifts, for ``leadline events --shift``)
     ``timezone`` (IANA name, default ``"UTC"``), then one key per shift:
@@ -191,6 +199,7 @@ from . import feeds as config_feeds
 from .feeds import FeedOverride, cross_check, merge, read_options, read_override
 from .sources import CsvSourceConfig, MqttSourceConfig, TopicConfig, read_sources
 from .shelving import SHELVING_KEYS, ShelvingConfig, read_shelving
+from .site import SITE_KEYS, SiteConfig, read_site
 from .values import (
     Bad,
     Problems,
@@ -211,7 +220,7 @@ _SHIFT_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_-]*\Z")
 _SHIFT_TIMES = re.compile(r"\s*(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*\Z")
 RESERVED_SHIFT_NAMES = ("last", "current", "timezone")
 
-TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts", "shelving")
+TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts", "shelving", "site")
 STORE_KEYS = ("url", "flush_interval_s", "flush_events", "retry_base_s", "retry_cap_s")
 REFIT_KEYS = ("every", "on_degraded", "window_points", "window_span", "workers")
 PUBLISH_KEYS = ("broker", "client_id", "topic_template", "status_topic_template", "max_queued_messages")
@@ -334,6 +343,8 @@ class Config:
     shifts : ShiftsConfig or None
     shelving : ShelvingConfig
         ``[shelving] max_duration``: the longest shelving (default 7 days).
+    site : SiteConfig or None
+        The site's false-alarm budget (:mod:`.site`), already applied to ``feed_defaults``.
     warnings : tuple of str
         Problems that do not stop the service.
     """
@@ -349,6 +360,7 @@ class Config:
     publish: PublishConfig | None = None
     shifts: ShiftsConfig | None = None
     shelving: ShelvingConfig = field(default_factory=ShelvingConfig)
+    site: SiteConfig | None = None
     warnings: tuple[str, ...] = ()
 
     @property
@@ -461,10 +473,19 @@ def _read(document: dict[str, Any], file: Path, problems: Problems) -> Config:
     publish = _read_publish(root.table("publish", PUBLISH_KEYS), mqtt_sources, mqtt_names, problems)
     shifts = _read_shifts(root, problems)
     shelving = read_shelving(root.table("shelving", SHELVING_KEYS))
+    named = {f for c in csv_sources for f in (c.feed_columns or {}).values()}
+    site = read_site(root.table("site", SITE_KEYS), len(named), problems)
+    if site is not None:
+        if "false_alarms_per_week" in given:
+            problems.error("feeds.defaults.false_alarms_per_week",
+                           "set either this or [site] false_alarms_per_operator_hour, which shares the site's "
+                           "budget among the feeds")
+        else:
+            defaults = {**defaults, "false_alarms_per_week": site.per_feed_per_week}
     return Config(
         path=file, store=store, csv_sources=tuple(csv_sources), mqtt_sources=tuple(mqtt_sources),
         feed_defaults=defaults, feed_overrides=tuple(overrides), feed_defaults_given=given, refit=refit,
-        publish=publish, shifts=shifts, shelving=shelving,
+        publish=publish, shifts=shifts, shelving=shelving, site=site,
         warnings=tuple(problems.warnings),
     )
 

@@ -72,6 +72,7 @@ from ..ports import AlarmPublisher, EventSink, Source
 if TYPE_CHECKING:
     from leadline.detector.engine import Engine
 
+from .accepts import AcceptPoller
 from .backoff import Backoff
 from .feed_reports import FeedReports
 from .reject_summary import RejectSummary, stage_source_rejects
@@ -140,6 +141,8 @@ class Service(FeedReports):
         starts with. A source may report units (``take_units()``, SenML
         ``u``); a unit that differs from the one known is a ``unit_change``
         event (warning, opened and closed at once).
+    accept_poll_interval_s : float
+        How often the store is asked for new ``accept`` notes (:mod:`.accepts`).
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -151,7 +154,8 @@ class Service(FeedReports):
                  store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
                  reject_log_interval_s: float = 60.0, heartbeat_interval_s: float = 5.0,
                  shelving_refresh_s: float = 5.0, service_name: str = "leadline",
-                 metadata: Callable[[str], dict[str, Any]] | None = None) -> None:
+                 metadata: Callable[[str], dict[str, Any]] | None = None,
+                 accept_poll_interval_s: float = 5.0) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -207,6 +211,8 @@ class Service(FeedReports):
         self.metadata = metadata
         #: Called with the service from each loop turn (``run --replay`` shows progress with it; it throttles).
         self.progress: Callable[[Service], None] | None = None
+        #: The operators' accept notes, applied to the engine (:mod:`.accepts`).
+        self.accepts = AcceptPoller(store, accept_poll_interval_s)
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -374,6 +380,8 @@ class Service(FeedReports):
         if now - self._last_tick >= self.tick_interval_s:
             self._last_tick = now
             self._handle(self.engine.tick(self.clock()))
+        if self.accepts.due(now):
+            self._apply_accepts(now)
         if now - self._last_checkpoint >= self.checkpoint_interval_s:
             self._stage_checkpoints()
             self._commit()
@@ -387,6 +395,17 @@ class Service(FeedReports):
             self.notifier.heartbeat()
         if self.progress is not None:
             self.progress(self)
+
+    def _apply_accepts(self, now: float) -> None:
+        """New accept notes to the engine; the checkpoints staged with the mark, committed at once."""
+        try:
+            applied = self.accepts.poll(self.engine, now, self._handle)
+        except StoreError as exc:
+            logger.warning(log_fields("accept notes not read", error=str(exc)))
+            return
+        if applied:
+            self._stage_checkpoints()
+            self._commit()
 
     def _stage_checkpoints(self) -> None:
         for feed_id, (state, version) in self.engine.checkpoints().items():

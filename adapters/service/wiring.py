@@ -79,6 +79,7 @@ def feed_settings(config: Config, feed_id: str) -> FeedSettings:
         counter=options["counter"],
         register_size=options["register_size"],
         timezone=options["timezone"],
+        incident_gap_slots=int(options["incident_gap_slots"]),
     )
 
 

@@ -202,3 +202,24 @@ def lock_schema(conn: Connection) -> None:
     # transaction-scoped advisory lock (key: an arbitrary fixed number).
     if conn.dialect.name == "postgresql":
         conn.execute(text("SELECT pg_advisory_xact_lock(7406215301)"))
+
+
+def replace_note_kinds(conn: Connection, notes: Table, kinds: tuple[str, ...]) -> None:
+    """Let ``event_notes`` take the note ``kinds`` (a schema upgrade step, in its transaction).
+
+    PostgreSQL replaces the CHECK constraint in place. SQLite cannot alter
+    a constraint, so the table is rebuilt: its rows read with their ids, the
+    table dropped and created as ``notes`` (with its indexes and append-only
+    triggers), the rows put back.
+    """
+    if conn.dialect.name == "postgresql":
+        listed = ", ".join(f"'{k}'" for k in kinds)
+        conn.exec_driver_sql("ALTER TABLE event_notes DROP CONSTRAINT ck_event_notes_kind_known")
+        conn.exec_driver_sql(f"ALTER TABLE event_notes ADD CONSTRAINT ck_event_notes_kind_known "
+                             f"CHECK (kind IN ({listed}))")
+        return
+    rows = [dict(r._mapping) for r in conn.execute(notes.select()).all()]
+    conn.exec_driver_sql("DROP TABLE event_notes")
+    notes.create(conn)
+    if rows:
+        conn.execute(notes.insert(), rows)

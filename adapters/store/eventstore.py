@@ -33,13 +33,15 @@ from leadline.detector.events import AlarmEvent
 from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
-from .connect import create_store_engine, resolve_url, write_transaction
+from .connect import create_store_engine, read_transaction, resolve_url, write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .migrations import ensure_schema
 from .reads import EventQueries
 from .dialects import insert_for
 from .feed_status import FeedStatusRow, Heartbeat
 from .queries import shelved_feeds
+from .queries import accept_notes_after
+from .records import AcceptNote
 from .writer import WriteBuffer, write_buffer
 
 
@@ -265,6 +267,28 @@ class EventWriter(StoreHandle):
         _require_utc("beat_at", beat.beat_at)
         with self._lock:
             self._buffer.heartbeat = beat
+    def stage_mark(self, name: str, value: int) -> None:
+        """Stage a named service mark (such as the last accept note applied); it commits with the events."""
+        self._check_open()
+        _require_text("mark name", name)
+        if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+            raise StoreError(f"service mark {name!r} must be an int, got {value!r}")
+        with self._lock:
+            self._buffer.marks[name] = int(value)
+
+    def mark(self, name: str) -> int | None:
+        """The committed value of a service mark, or None."""
+        self._check_open()
+        sm = schema.service_marks
+        with read_transaction(self._engine, f"reading service mark {name!r}") as conn:
+            value = conn.execute(select(sm.c.value).where(sm.c.name == name)).scalar()
+        return None if value is None else int(value)
+
+    def accept_notes_after(self, note_id: int) -> list[AcceptNote]:
+        """The committed ``accept`` notes with an id above ``note_id``, oldest first, with their event's key."""
+        self._check_open()
+        with read_transaction(self._engine, "reading accept notes") as conn:
+            return accept_notes_after(conn, int(note_id))
 
     def flush(self) -> int:
         """Commit everything staged in ONE transaction; return the events written.

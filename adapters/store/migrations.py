@@ -29,7 +29,7 @@ from leadline.detector.errors import SchemaVersionError
 
 from . import schema
 from .connect import read_transaction, safe_url, write_transaction
-from .dialects import lock_schema as _lock_schema
+from .dialects import lock_schema as _lock_schema, replace_note_kinds
 
 _BACKFILL_BATCH = 5000
 
@@ -68,11 +68,26 @@ def _add_feed_status(conn: Connection) -> None:
     md.tables["service_heartbeat"].create(conn)
 
 
+def _add_incidents_and_accept_notes(conn: Connection) -> None:
+    """Add ``events.incident_start`` (NULL for the old events: each one an incident of its own),
+    the note kind ``accept`` and the ``service_marks`` table.
+
+    The note kinds are a CHECK constraint, replaced by
+    :func:`~.dialects.replace_note_kinds`.
+    """
+    new = schema.build_metadata(5)
+    type_sql = conn.dialect.type_compiler_instance.process(new.tables["events"].c.incident_start.type)
+    conn.exec_driver_sql(f"ALTER TABLE events ADD COLUMN incident_start {type_sql}")
+    replace_note_kinds(conn, new.tables["event_notes"], schema.NOTE_KINDS)
+    new.tables["service_marks"].create(conn)
+
+
 #: ``UPGRADES[v]`` turns a version ``v - 1`` database into version ``v``.
 UPGRADES: dict[int, tuple[str, Callable[[Connection], None]]] = {
     2: ("events.start_hour and ix_events_hour for alarm counts per hour", _upgrade_1_to_2),
     3: ("evidence: readings and forecasts around each alarm episode", _upgrade_2_to_3),
     4: ("feed_status and service_heartbeat: each feed's state and the service's liveness", _add_feed_status),
+    5: ("events.incident_start, the accept note kind and service_marks", _add_incidents_and_accept_notes),
 }
 
 _DESCRIPTIONS = {1: "first schema"} | {v: d for v, (d, _) in UPGRADES.items()}

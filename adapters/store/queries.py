@@ -18,7 +18,7 @@ from leadline.adapters.ports import RejectSample, SourceOffset
 from leadline.detector.events import SEVERITIES, AlarmEvent
 
 from . import schema
-from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
+from .records import AcceptNote, FeedCount, Feed, HourCount, Incident, ModelRecord, Note, RejectCount, StoredEvent
 
 _EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
 _IN_CHUNK = 500
@@ -78,6 +78,7 @@ def _to_event(r: Any) -> AlarmEvent:
         model_version=r.model_version,
         detail=r.detail,
         caution=r.caution,
+        incident_start=r.incident_start,
     )
 
 
@@ -329,3 +330,36 @@ def load_checkpoints(conn: Connection) -> dict[str, tuple[bytes, int]]:
     cp = schema.checkpoints
     return {r.feed_id: (bytes(r.state), int(r.model_version)) for r in conn.execute(select(cp))}
 
+
+
+def accept_notes_after(conn: Connection, note_id: int) -> list[AcceptNote]:
+    """The ``accept`` notes with an id above ``note_id``, oldest first, with their event's key."""
+    n, ev = schema.event_notes, schema.events
+    rows = conn.execute(
+        select(n.c.id, n.c.event_id, n.c.feed_id, n.c.operator, n.c.text, n.c.at, ev.c.rule, ev.c.start_at)
+        .join(ev, ev.c.id == n.c.event_id)
+        .where(n.c.kind == "accept", n.c.id > note_id)
+        .order_by(n.c.id)
+    ).all()
+    return [AcceptNote(note_id=r.id, event_id=r.event_id, feed_id=r.feed_id, rule=r.rule, event_start=r.start_at,
+                       operator=r.operator, text=r.text, at=r.at) for r in rows]
+
+
+def group_incidents(stored: Sequence[StoredEvent]) -> list[Incident]:
+    """Events grouped by ``(feed_id, incident_start)``, in the order of each incident's first event."""
+    groups: dict[tuple[str, datetime], list[StoredEvent]] = {}
+    for se in sorted(stored, key=lambda e: (e.event.start, e.id)):
+        groups.setdefault((se.event.feed_id, se.incident_start), []).append(se)
+    out = []
+    for (feed_id, start), members in groups.items():
+        ends = [m.event.end for m in members]
+        peaks = [m.event.peak_abs_z for m in members if m.event.peak_abs_z == m.event.peak_abs_z]
+        out.append(Incident(
+            id=members[0].id, feed_id=feed_id, start=start,
+            end=None if any(e is None for e in ends) else max(ends),
+            rules=tuple(dict.fromkeys(m.event.rule for m in members)),
+            severity=max((m.event.severity for m in members), key=SEVERITIES.index),
+            peak_abs_z=max(peaks) if peaks else float("nan"),
+            events=tuple(members)))
+    out.sort(key=lambda i: (i.start, i.id))
+    return out

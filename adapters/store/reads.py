@@ -26,7 +26,7 @@ from .connect import write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .records import FeedCount, Feed, HourCount, ModelRecord, Note, RejectCount, StoredEvent
 
-_NOTE_KINDS = ("ack", "comment")
+_NOTE_KINDS = ("ack", "comment", "accept")
 
 
 class EventQueries(StoreHandle):
@@ -39,7 +39,10 @@ class EventQueries(StoreHandle):
 
     # ----------------------------------------------------------- operator notes
     def add_note(self, event_id: int, kind: str, operator: str, text: str, at: datetime | None = None) -> int:
-        """Append an acknowledgement (``kind="ack"``) or comment to an event.
+        """Append an acknowledgement (``kind="ack"``), a comment or an ``accept`` note to an event.
+
+        An ``accept`` note accepts the event's level shift as the feed's new
+        normal; the running service applies it (its text is required).
 
         Notes are never edited or deleted (the database refuses it). Returns
         the note's id. Raises :class:`StoreError` for an unknown event id.
@@ -48,8 +51,8 @@ class EventQueries(StoreHandle):
         if kind not in _NOTE_KINDS:
             raise StoreError(f"note kind must be one of {_NOTE_KINDS} (shelving: use shelve()), got {kind!r}")
         _require_text("operator", operator)
-        if kind == "comment":
-            _require_text("comment text", text)
+        if kind in ("comment", "accept"):
+            _require_text(f"{kind} text", text)
         at = _require_utc("at", at) if at is not None else self._clock()
         ev, n = schema.events, schema.event_notes
         with write_transaction(self._engine, f"adding a note to event {event_id}") as conn:

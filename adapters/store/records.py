@@ -23,7 +23,8 @@ class Note:
         The event it belongs to; None for a shelving note (which is of a feed).
     feed_id : str
     kind : str
-        ``"ack"``, ``"comment"`` or ``"shelve"``.
+        ``"ack"``, ``"comment"``, ``"shelve"`` or ``"accept"`` (a level
+        shift accepted as the feed's new normal).
     operator : str
         Who wrote it.
     text : str
@@ -67,6 +68,67 @@ class StoredEvent:
     def acknowledged(self) -> bool:
         """True once any acknowledgement note exists."""
         return any(n.kind == "ack" for n in self.notes)
+
+    @property
+    def incident_start(self) -> datetime:
+        """The start of the event's incident (its own start for an event stored without one)."""
+        return self.event.incident_start or self.event.start
+
+
+@dataclass(frozen=True, slots=True)
+class AcceptNote:
+    """An ``accept`` note with the key of its event: what the service applies to the engine."""
+
+    note_id: int
+    event_id: int
+    feed_id: str
+    rule: str
+    event_start: datetime
+    operator: str
+    text: str
+    at: datetime
+
+
+@dataclass(frozen=True, slots=True)
+class Incident:
+    """The events of one feed's incident, as one listing line.
+
+    Attributes
+    ----------
+    id : int
+        The id of its first event (the one an operator types).
+    feed_id : str
+    start : datetime
+        The incident's start (its first event's start).
+    end : datetime or None
+        The latest end of its events; None while any is active.
+    rules : tuple of str
+        The rules that fired, in the order they first fired.
+    severity : str
+        The worst severity.
+    peak_abs_z : float
+        The largest peak |z| (NaN when no event has one).
+    events : tuple of StoredEvent
+        Oldest first.
+    """
+
+    id: int
+    feed_id: str
+    start: datetime
+    end: datetime | None
+    rules: tuple[str, ...]
+    severity: str
+    peak_abs_z: float
+    events: tuple[StoredEvent, ...]
+
+    @property
+    def acknowledged(self) -> bool:
+        """True once every event of the incident is acknowledged."""
+        return all(e.acknowledged for e in self.events)
+
+    @property
+    def acknowledged_events(self) -> int:
+        return sum(1 for e in self.events if e.acknowledged)
 
 
 @dataclass(frozen=True, slots=True)

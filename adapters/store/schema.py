@@ -81,9 +81,12 @@ from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
 from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 
-NOTE_KINDS = ("ack", "comment", "shelve")
+#: Note kinds at each schema version: "accept" (an operator accepts a
+#: level shift as the feed's new normal) came with version 4.
+NOTE_KINDS_V1 = ("ack", "comment", "shelve")
+NOTE_KINDS = NOTE_KINDS_V1 + ("accept",)
 
 _NAMING = {
     "ix": "ix_%(table_name)s_%(column_0_name)s",
@@ -121,7 +124,9 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     index ``ix_events_hour``, so counting alarms per hour is an index-only
     scan on both backends instead of a per-row date expression. Version 3
     added the ``evidence`` table; version 4 ``feed_status`` and
-    ``service_heartbeat``.
+    ``service_heartbeat``. Version 5 added ``events.incident_start``
+    (the start of the event's incident, :mod:`leadline.detector.incidents`),
+    the note kind ``accept`` and the ``service_marks`` table.
     """
     if not 1 <= version <= SCHEMA_VERSION:
         raise ValueError(f"schema version must be 1..{SCHEMA_VERSION}, got {version}")
@@ -187,6 +192,10 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
         # Nullable only because ALTER TABLE ADD COLUMN cannot add a NOT NULL
         # column without a default; the writer always fills it.
         event_columns.append(Column("start_hour", BigInteger))
+    if version >= 5:
+        # NULL for an event stored without an incident (and for every event
+        # stored before version 5): it is then an incident of its own.
+        event_columns.append(_utc("incident_start", nullable=True))
     events = Table(
         "events",
         md,
@@ -204,7 +213,7 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     if version >= 2:
         Index("ix_events_hour", events.c.start_hour, events.c.severity)
 
-    kinds = ", ".join(f"'{k}'" for k in NOTE_KINDS)
+    kinds = ", ".join(f"'{k}'" for k in (NOTE_KINDS if version >= 5 else NOTE_KINDS_V1))
     notes = Table(
         "event_notes",
         md,
@@ -277,6 +286,8 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
         _evidence_table(md)
     if version >= 4:
         feed_status_tables(md)
+    if version >= 5:
+        _service_marks_table(md)
     return md
 
 
@@ -308,6 +319,17 @@ def feed_status_tables(md: MetaData) -> tuple[Table, Table]:
         Column("version", Text, nullable=False),
     )
     return status, beat
+
+
+def _service_marks_table(md: MetaData) -> Table:
+    """``service_marks``: one named integer per row (e.g. the last accept note applied)."""
+    return Table(
+        "service_marks",
+        md,
+        Column("name", Text, primary_key=True),
+        Column("value", BigInteger, nullable=False),
+        _utc("updated_at"),
+    )
 
 
 def _evidence_table(md: MetaData) -> Table:
@@ -345,6 +367,7 @@ reject_samples = metadata.tables["reject_samples"]
 evidence = metadata.tables["evidence"]
 feed_status = metadata.tables["feed_status"]
 service_heartbeat = metadata.tables["service_heartbeat"]
+service_marks = metadata.tables["service_marks"]
 
 #: Every table name the store owns (to recognise a foreign or damaged schema).
 TABLE_NAMES = frozenset(metadata.tables)

@@ -94,9 +94,12 @@ class WriteBuffer:
         self.feed_status: dict[str, FeedStatusRow] = {}
         self.heartbeat: Heartbeat | None = None
 
+        #: Named service marks (``service_marks``); the latest staged value wins.
+        self.marks: dict[str, int] = {}
+
     def __len__(self) -> int:
         return (len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
-                + len(self.feed_status) + (self.heartbeat is not None))
+                + len(self.feed_status) + (self.heartbeat is not None) + len(self.marks))
 
     def add_event(self, ev: AlarmEvent) -> None:
         """Stage ``ev``, merged with a staged copy of the same episode.
@@ -173,6 +176,7 @@ def event_row(ev: AlarmEvent, now: datetime) -> dict[str, Any]:
         "created_at": now,
         "updated_at": now,
         "start_hour": schema.start_hour_of(ev.start.timestamp()),
+        "incident_start": ev.incident_start,
     }
 
 
@@ -195,6 +199,7 @@ def _event_upsert(insert: Callable[..., Any]) -> Any:
                 else_=ev.c.peak_abs_z,
             ),
             "detail": case((new.end_at.is_not(None), new.detail), else_=ev.c.detail),
+            "incident_start": func.coalesce(ev.c.incident_start, new.incident_start),
             "updated_at": new.updated_at,
         },
     )
@@ -204,7 +209,7 @@ def _event_upsert(insert: Callable[..., Any]) -> Any:
 _EVENT_COLUMNS = (
     "feed_id", "rule", "severity", "start_at", "end_at", "peak_abs_z", "value_at_onset",
     "forecast_at_onset", "lower_at_onset", "upper_at_onset", "parameters", "model_version",
-    "detail", "caution", "created_at", "updated_at", "start_hour",
+    "detail", "caution", "created_at", "updated_at", "start_hour", "incident_start",
 )  # fmt: skip
 if set(_EVENT_COLUMNS) != {c.name for c in schema.events.columns} - {"id"}:
     raise RuntimeError("writer._EVENT_COLUMNS is out of step with schema.events")
@@ -270,6 +275,7 @@ class EventUpsert:
                 now_db,
                 now_db,
                 hour(ev.start.timestamp()),
+                t(ev.incident_start),
             )
             for ev in evs
         ]
@@ -369,6 +375,13 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
         write_feed_status(conn, insert, buf.feed_status.values(), now)
     if buf.heartbeat is not None:
         write_heartbeat(conn, insert, buf.heartbeat)
+
+    if buf.marks:
+        sm = schema.service_marks
+        stmt = insert(sm)
+        stmt = stmt.on_conflict_do_update(index_elements=[sm.c.name],
+                                          set_={"value": stmt.excluded.value, "updated_at": stmt.excluded.updated_at})
+        conn.execute(stmt, [{"name": k, "value": int(v), "updated_at": now} for k, v in buf.marks.items()])
     return len(buf.events)
 
 

@@ -19,13 +19,14 @@ from .contract import RESERVED_KEYS, LimitKey, RuleEntry
 
 __all__ = ["LimitKey", "RuleEntry", "RULES", "ENGINE_EVENT_KINDS", "entry", "rule_names", "event_rule_names",
            "limit_keys", "default_lifecycles"]
-from . import cusum, ewma, flatline, noise_burst, range_check, spike, stale
+from . import cusum, drift, ewma, flatline, noise_burst, range_check, spike, stale
 
 #: Every rule, in the order the monitor runs them.
 RULES: tuple[RuleEntry, ...] = (
     spike.ENTRY,
     cusum.ENTRY,
     ewma.ENTRY,
+    drift.ENTRY,
     noise_burst.ENTRY,
     flatline.ENTRY,
     range_check.ENTRY,
