@@ -461,7 +461,7 @@ class FeedLifecycle:
         """Close the open level-shift episode: the present level is the new normal (:meth:`FeedMonitor.accept_level`)."""
         if self.monitor is None or not self.monitor.level_episode_open:
             raise DataError(f"feed {self.feed_id!r} has no open level-shift episode to accept")
-        return EngineOutput(events=self.monitor.accept_level(at, by, note))
+        return self.tag_events(EngineOutput(events=self.monitor.accept_level(at, by, note)))
 
     def refit_failed(self, error: str) -> EngineOutput:
         p = self.pending

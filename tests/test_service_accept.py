@@ -99,8 +99,6 @@ def test_without_accept_level_the_notes_wait_and_say_so(shifted_site, capsys, ca
         assert again.mark(MARK) is None  # still waiting for an engine that can apply it
 
 
-@pytest.mark.xfail(not hasattr(Engine, "accept_level"), strict=True,
-                   reason="Engine.accept_level (the level condition) is not in this build yet")
 def test_an_accept_note_is_applied_once_and_not_again_after_a_restart(shifted_site, capsys):
     event_id = level_event(shifted_site)
     assert main(["accept", str(event_id), "--db", str(shifted_site), "--by", "operator-r",
