@@ -15,7 +15,7 @@ from importlib.metadata import PackageNotFoundError, version
 
 from leadline.detector.errors import LeadlineError
 
-from . import check_config, demo, events, export, notes, replay, report, run, score, status, summary
+from . import check_config, demo, events, export, notes, replay, report, run, score, status, summary, tune
 from .exit_codes import EX_USAGE
 
 __all__ = ["build_parser", "installed_version", "main"]
@@ -48,6 +48,7 @@ def build_parser() -> argparse.ArgumentParser:
     summary.add_parser(subparsers)
     report.add_parser(subparsers)
     replay.add_parser(subparsers)
+    tune.add_parser(subparsers)
     return parser
 
 
