@@ -104,3 +104,29 @@ def test_tune_prints_a_row_per_setting_and_writes_the_csv(replayed, capsys):
     for row in rows:
         span_s = (699 * STEP).total_seconds()
         assert float(row["alarms_per_shift"]) == pytest.approx(int(row["alarms"]) / (span_s / (8 * 3600)))
+
+
+def test_the_report_plots_alarm_load_against_recall(replayed, capsys):
+    pytest.importorskip("matplotlib")
+    folder, config_path, _ = replayed
+    out_csv = folder / "tune-report.csv"
+    assert main(["tune", "--config", str(config_path), "--setting", "on_delay=1,2",
+                 "--labels", str(folder / "labels.csv"), "--csv", str(out_csv)]) == 0
+    assert main(["replay", "--config", str(config_path)]) == 0
+    page = folder / "report.html"
+    assert main(["report", "--db", str(folder / "replay.db"), "--since", START.isoformat(),
+                 "--until", (START + 700 * STEP).isoformat(), "--tune", str(out_csv), "--out", str(page)]) == 0
+    html = page.read_text()
+    section = html[html.index('<section id="tune">'):]
+    assert "on_delay=1" in section and "on_delay=2" in section
+    assert 'aria-label="Alarm load against recall, one point per setting"' in section
+    capsys.readouterr()
+
+
+def test_a_tune_csv_without_its_columns_is_refused(tmp_path):
+    from leadline.adapters.report.tune_section import read_tune_csv
+
+    path = tmp_path / "t.csv"
+    path.write_text("setting,recall\nx,1\n")
+    with pytest.raises(ConfigError, match=r"t.csv:1: not a leadline tune CSV \(missing alarms_per_feed_week"):
+        read_tune_csv(path)

@@ -99,8 +99,11 @@ def _incident_lines(inc: Incident, data: ShiftData, rv: Review) -> list[str]:
     return lines
 
 
-def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime) -> dict[str, Any]:
-    """Everything the template shows (plots rendered as SVG text)."""
+def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime,
+                  tune_csv: str | None = None) -> dict[str, Any]:
+    """Everything the template shows (plots rendered as SVG text); ``tune_csv``: a ``leadline tune`` CSV."""
+    from ..report.tune_section import tune_context
+
     from markupsafe import Markup
 
     from ..report.plots import incident_svg, rate_svg
@@ -173,10 +176,12 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
         "version": _version(),
         "flood_alarms": FLOOD_ALARMS,
         "repeat_min": REPEAT_MIN,
+        "tune": tune_context(tune_csv),
     }
 
 
-def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime) -> str:
+def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime,
+                  tune_csv: str | None = None) -> str:
     """The HTML page."""
     from ..report.plots import require_report_libraries
 
@@ -186,7 +191,7 @@ def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, n
     from ..report.template import PAGE
 
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
-    return env.from_string(PAGE).render(**build_context(data, window, rv, evidence, now))
+    return env.from_string(PAGE).render(**build_context(data, window, rv, evidence, now, tune_csv))
 
 
 def default_path(window: Window) -> Path:
@@ -206,7 +211,7 @@ def run_report(args, out: TextIO | None = None) -> int:
         data = load_figures(rv.store, window.since, window.until)
         keys = [s.event.key for inc in data.incidents[:MAX_PANELS] for s in inc.events]
         evidence = rv.store.evidence(keys)
-        html = render_report(data, window, rv, evidence, now)
+        html = render_report(data, window, rv, evidence, now, getattr(args, "tune", None))
     path = Path(args.out) if args.out else default_path(window)
     try:
         path.write_text(html, encoding="utf-8")
@@ -226,4 +231,5 @@ def add_parser(subparsers) -> None:
     add_store_options(p)
     add_window_options(p, None)
     p.add_argument("--out", metavar="FILE", help="the HTML file to write (default: leadline-report-<shift>.html)")
+    p.add_argument("--tune", metavar="CSV", help="add the settings tried: a CSV written by leadline tune --csv")
     p.set_defaults(handler=run_report)
