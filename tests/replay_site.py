@@ -74,3 +74,12 @@ def write_site(folder: Path, mode: str = "sigma", files: int = 2) -> Path:
     path = folder / "leadline.toml"
     path.write_text(CONFIG.format(mode=mode))
     return path
+
+
+def comparable(events) -> dict:
+    """Final events by key -> (end, severity, peak |z| (None for NaN), model version, detail): NaN-safe equality."""
+    out = {}
+    for event in events:
+        peak = None if event.peak_abs_z != event.peak_abs_z else event.peak_abs_z
+        out[event.key] = (event.end, event.severity, peak, event.model_version, event.detail)
+    return out

@@ -1,4 +1,4 @@
-"""``leadline tune``: settings grid, labels file, and the scores cross-checked against the detection benchmark's rule."""
+"""``leadline tune``: the settings grid, the labels file, the scores checked against the detection benchmark."""
 
 from __future__ import annotations
 

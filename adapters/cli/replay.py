@@ -50,8 +50,16 @@ class Progress:
     def __call__(self, result) -> None:
         self.feeds += len(result.feeds)
         self.readings += result.readings
-        rate = self.readings / max(time.monotonic() - self.started, 1e-9)
-        line = (f"replay: {self.feeds}/{self.total_feeds} feeds, {self.readings}/{self.total_readings} readings, "
+        self._line()
+
+    def within(self, readings: int) -> None:
+        """Readings replayed so far by the one group running in this process."""
+        self._line(readings)
+
+    def _line(self, running: int = 0) -> None:
+        rate = (self.readings + running) / max(time.monotonic() - self.started, 1e-9)
+        line = (f"replay: {self.feeds}/{self.total_feeds} feeds, "
+                f"{self.readings + running}/{self.total_readings} readings, "
                 f"{rate:.0f} readings/s")
         if self.tty:
             self.stream.write("\r" + line)
@@ -91,7 +99,8 @@ def _handle(args) -> int:
     store = open_store(url)
     try:
         progress = Progress(len(history.feeds), history.readings)
-        run = run_replay(history, settings, workers=args.workers, scheduler=args.scheduler, on_done=progress)
+        run = run_replay(history, settings, workers=args.workers, scheduler=args.scheduler, on_done=progress,
+                         on_progress=progress.within)
         write_results(store, run.results)
     finally:
         store.close()

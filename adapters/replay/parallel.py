@@ -44,14 +44,16 @@ def _group_task(feeds: list[FeedHistory], settings: dict[str, FeedSettings]) -> 
 
 def run_groups(histories: Mapping[str, FeedHistory], settings: Mapping[str, FeedSettings], *,
                workers: int = 1, scheduler: str | None = None, groups_per_worker: int = 4,
-               on_done: Callable[[GroupResult], None] | None = None) -> list[GroupResult]:
+               on_done: Callable[[GroupResult], None] | None = None,
+               on_progress: Callable[[int], None] | None = None) -> list[GroupResult]:
     """Replay every feed of ``histories``; the results in group order (see the module's docstring).
 
-    ``on_done(result)`` is called as each group finishes (progress).
+    ``on_done(result)`` is called as each group finishes; in one process
+    ``on_progress(readings)`` also every 100,000 readings (progress).
     """
     done = on_done or (lambda result: None)
     if scheduler is None and workers <= 1:
-        result = replay_group([histories[f] for f in sorted(histories)], settings)
+        result = replay_group([histories[f] for f in sorted(histories)], settings, on_progress=on_progress)
         done(result)
         return [result]
     n_workers = max(1, workers)

@@ -107,7 +107,8 @@ class _GroupReplay:
         self.handle(self.engine.install_model(request.feed_id, fitted, version, request.reason,
                                               thresholds=thresholds, request=request))
 
-    def run(self, feeds: Iterable[FeedHistory]) -> GroupResult:
+    def run(self, feeds: Iterable[FeedHistory], on_progress: Callable[[int], None] | None = None,
+            every: int = 100_000) -> GroupResult:
         feeds = list(feeds)
         self.result = GroupResult([f.feed_id for f in feeds])
         engine = self.engine
@@ -118,6 +119,8 @@ class _GroupReplay:
                 self.clock = reading.timestamp
             self.handle(engine.process(reading), reading)
             self.result.readings += 1
+            if on_progress is not None and self.result.readings % every == 0:
+                on_progress(self.result.readings)
         if self.clock is not None:
             self.handle(engine.tick(self.clock))
         self.result.evidence.extend(self.evidence.partial())
@@ -125,7 +128,8 @@ class _GroupReplay:
 
 
 def replay_group(feeds: Iterable[FeedHistory], settings: Mapping[str, FeedSettings],
-                 refit: Callable[[Any], Any] | None = None) -> GroupResult:
+                 refit: Callable[[Any], Any] | None = None,
+                 on_progress: Callable[[int], None] | None = None) -> GroupResult:
     """Replay one group of feeds; see the module's docstring.
 
     Parameters
@@ -136,5 +140,7 @@ def replay_group(feeds: Iterable[FeedHistory], settings: Mapping[str, FeedSettin
     refit : callable, optional
         ``refit(request) -> (FittedModel, thresholds JSON)``; default
         :func:`~leadline.detector.engine.run_refit_with_thresholds`.
+    on_progress : callable, optional
+        Called with the readings replayed so far, every 100,000 readings.
     """
-    return _GroupReplay(settings, refit or run_refit_with_thresholds).run(feeds)
+    return _GroupReplay(settings, refit or run_refit_with_thresholds).run(feeds, on_progress)

@@ -11,7 +11,7 @@ import os
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable, Mapping, Sequence
+from typing import Callable, Mapping, Sequence
 
 from leadline.detector.engine import FeedSettings
 from leadline.detector.events import AlarmEvent
@@ -65,8 +65,10 @@ class ReplayRun:
 
 
 def run_replay(history: History, settings: Mapping[str, FeedSettings], *, workers: int = 1,
-               scheduler: str | None = None, on_done: Callable[[GroupResult], None] | None = None) -> ReplayRun:
-    results = run_groups(history.feeds, settings, workers=workers, scheduler=scheduler, on_done=on_done)
+               scheduler: str | None = None, on_done: Callable[[GroupResult], None] | None = None,
+               on_progress: Callable[[int], None] | None = None) -> ReplayRun:
+    results = run_groups(history.feeds, settings, workers=workers, scheduler=scheduler, on_done=on_done,
+                         on_progress=on_progress)
     return ReplayRun(results, summarise(history.feeds, (e for r in results for e in r.events)))
 
 

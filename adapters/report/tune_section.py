@@ -44,7 +44,8 @@ def read_tune_csv(path: str | Path) -> list[dict[str, Any]]:
             for number, row in enumerate(reader, start=2):
                 where = f"{path}:{number}"
                 rows.append({"setting": row["setting"],
-                             "alarms_per_feed_week": _number(row["alarms_per_feed_week"], where, "alarms_per_feed_week"),
+                             "alarms_per_feed_week": _number(row["alarms_per_feed_week"], where,
+                                                             "alarms_per_feed_week"),
                              "alarms_per_shift": _number(row["alarms_per_shift"], where, "alarms_per_shift"),
                              "recall": _number(row.get("recall", ""), where, "recall"),
                              "precision": _number(row.get("precision", ""), where, "precision")})
