@@ -112,20 +112,48 @@ def time_replay(config_path: Path, workers: int, url: str) -> tuple[float, int]:
     return time.perf_counter() - began, run.summary.events
 
 
-def memory(config_path: Path, feeds: int) -> None:
+def memory(config_path: Path) -> tuple[int, int, int]:
+    """(history array bytes, tracemalloc peak, RSS growth) of a one-process replay, store write left out."""
     config = load_config(config_path)
     before = rss_bytes()
     tracemalloc.start()
     history = history_for(config)
     input_bytes = sum(h.epoch_s.nbytes + h.values.nbytes for h in history.feeds.values())
-    run = run_replay(history, replay_settings(config, list(history.feeds)))
+    run_replay(history, replay_settings(config, list(history.feeds)))
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
-    grown = rss_bytes() - before
-    per = 1000.0 / feeds
-    print(f"memory (one process): history arrays {input_bytes / 1e6:.1f} MB; tracemalloc peak beyond them "
-          f"{(peak - input_bytes) * per / 1e6:.1f} MB per 1,000 feeds; RSS growth beyond them "
-          f"{(grown - input_bytes) * per / 1e6:.1f} MB per 1,000 feeds ({len(run.events)} events)")
+    return input_bytes, peak, rss_bytes() - before
+
+
+def memory_slope(folder: Path, feeds: int, days: int) -> None:
+    """Memory per 1,000 feeds beyond the input: the slope between half the feeds and all of them.
+
+    A fit's transient arrays are a fixed cost whatever the number of feeds, so
+    the slope, not the total over the feeds, is the cost per feed. Each size
+    runs in a fresh process (the peak and RSS of one run are not the next's).
+    """
+    import subprocess
+
+    sizes = sorted({max(1, feeds // 2), feeds})
+    measured = {}
+    for n in sizes:
+        sub = folder / f"mem{n}"
+        sub.mkdir()
+        write_history(sub, n, days)
+        code = ("import sys; sys.path.insert(0, %r); import bench_replay as b, pathlib; "
+                "print(*b.memory(pathlib.Path(%r)))" % (str(Path(__file__).parent), str(sub / "leadline.toml")))
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+        measured[n] = [int(x) for x in out.split()[-3:]]
+    for n in sizes:
+        input_bytes, peak, grown = measured[n]
+        print(f"memory, {n} feeds: history arrays {input_bytes / 1e6:.1f} MB, tracemalloc peak "
+              f"{peak / 1e6:.1f} MB, RSS growth {grown / 1e6:.1f} MB")
+    if len(sizes) == 2:
+        a, b = sizes
+        per = 1000.0 / (b - a)
+        (ia, pa, ga), (ib, pb, gb) = measured[a], measured[b]
+        print(f"memory per 1,000 feeds beyond the input (slope {a} -> {b} feeds): tracemalloc peak "
+              f"{((pb - ib) - (pa - ia)) * per / 1e6:.0f} MB, RSS {((gb - ib) - (ga - ia)) * per / 1e6:.0f} MB")
 
 
 def main(argv=None) -> int:
@@ -150,7 +178,7 @@ def main(argv=None) -> int:
         for name, seconds, events in rows:
             print(f"  {name:42s} {seconds:8.1f} s  {readings / seconds:10.0f} readings/s  "
                   f"x{engine_s / seconds:5.2f} vs engine" + (f"  ({events} events)" if events is not None else ""))
-        memory(config_path, args.feeds)
+        memory_slope(folder, args.feeds, args.days)
     return 0
 
 
