@@ -15,7 +15,7 @@ from importlib.metadata import PackageNotFoundError, version
 
 from leadline.detector.errors import LeadlineError
 
-from . import check_config, demo, events, export, notes, report, run, score, status, summary
+from . import check_config, demo, events, export, notes, replay, report, run, score, status, summary, tune
 from .exit_codes import EX_USAGE
 
 __all__ = ["build_parser", "installed_version", "main"]
@@ -47,6 +47,8 @@ def build_parser() -> argparse.ArgumentParser:
     export.add_parser(subparsers)
     summary.add_parser(subparsers)
     report.add_parser(subparsers)
+    replay.add_parser(subparsers)
+    tune.add_parser(subparsers)
     return parser
 
 

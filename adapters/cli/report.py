@@ -103,8 +103,11 @@ def _incident_lines(inc: Incident, data: ShiftData, rv: Review) -> list[str]:
 
 
 def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime,
-                  progress: Any = None) -> dict[str, Any]:
-    """Everything the template shows (plots rendered as SVG text); ``progress`` is told of each panel."""
+                  progress: Any = None, tune_csv: str | None = None) -> dict[str, Any]:
+    """Everything the template shows (plots rendered as SVG text); ``progress`` is told of each panel;
+    ``tune_csv``: a ``leadline tune`` CSV."""
+    from ..report.tune_section import tune_context
+
     from markupsafe import Markup
 
     from ..report.plots import incident_svg, rate_svg
@@ -179,11 +182,12 @@ def build_context(data: ShiftData, window: Window, rv: Review, evidence: dict, n
         "version": _version(),
         "flood_alarms": FLOOD_ALARMS,
         "repeat_min": REPEAT_MIN,
+        "tune": tune_context(tune_csv),
     }
 
 
 def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, now: datetime,
-                  progress: Any = None) -> str:
+                  progress: Any = None, tune_csv: str | None = None) -> str:
     """The HTML page."""
     from ..report.plots import require_report_libraries
 
@@ -193,7 +197,7 @@ def render_report(data: ShiftData, window: Window, rv: Review, evidence: dict, n
     from ..report.template import PAGE
 
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
-    return env.from_string(PAGE).render(**build_context(data, window, rv, evidence, now, progress))
+    return env.from_string(PAGE).render(**build_context(data, window, rv, evidence, now, progress, tune_csv))
 
 
 def default_path(window: Window) -> Path:
@@ -214,7 +218,7 @@ def run_report(args, out: TextIO | None = None) -> int:
         keys = [s.event.key for inc in data.incidents[:MAX_PANELS] for s in inc.events]
         evidence = rv.store.evidence(keys)
         drawing = Progress(out, "drawing incident panels", min(len(data.incidents), MAX_PANELS), after_s=1.0)
-        html = render_report(data, window, rv, evidence, now, drawing)
+        html = render_report(data, window, rv, evidence, now, drawing, getattr(args, "tune", None))
         drawing.finish(min(len(data.incidents), MAX_PANELS))
     path = Path(args.out) if args.out else default_path(window)
     try:
@@ -236,4 +240,5 @@ def add_parser(subparsers) -> None:
     add_window_options(p, None)
     add_include_option(p)
     p.add_argument("--out", metavar="FILE", help="the HTML file to write (default: leadline-report-<shift>.html)")
+    p.add_argument("--tune", metavar="CSV", help="add the settings tried: a CSV written by leadline tune --csv")
     p.set_defaults(handler=run_report)

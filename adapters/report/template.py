@@ -117,6 +117,17 @@ numbers are quoted from memory). An alarm here is one event of either severity t
 <ul class="lines">{% for line in more_incidents %}<li>{{ line }}</li>{% endfor %}</ul>
 {% endif %}
 </section>
+{% if tune %}
+
+<section id="tune">
+<h2>Settings tried (leadline tune)</h2>
+<p class="meta">From {{ tune.source }}: the same history replayed once per setting.</p>
+{% if tune.svg %}<figure>{{ tune.svg }}</figure>{% endif %}
+<table><tr><th>#</th><th>setting</th><th>alarms per feed-week</th><th>alarms per shift</th><th>recall</th><th>precision</th></tr>
+{% for r in tune.rows %}<tr><td class="num">{{ r.n }}</td><td>{{ r.setting }}</td><td class="num">{{ r.per_week }}</td><td class="num">{{ r.per_shift }}</td><td class="num">{{ r.recall }}</td><td class="num">{{ r.precision }}</td></tr>
+{% endfor %}</table>
+</section>
+{% endif %}
 
 <footer>
   <p>Made by leadline {{ version }} from the event store. Figures: alarms started in the window; a flood is more

@@ -340,6 +340,9 @@ class Service(FeedReports):
                 future.set_result(self.refit(request))
             except Exception as exc:  # noqa: BLE001 - reported per feed, the service goes on
                 future.set_exception(exc)
+            self._fits[future] = request
+            self._collect_fits(block=True)  # inline: installed before the next reading, as a replay does
+            return
         else:
             future = self._pool.submit(self.refit, request)
         self._fits[future] = request

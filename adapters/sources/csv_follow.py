@@ -529,6 +529,20 @@ class CsvFollower:
     def followed_paths(self) -> list[str]:
         return sorted(self._tails)
 
+    def finish(self) -> list[Reading]:
+        """The readings of each file's final line without newline, taken as complete.
+
+        For a replay that reads files to their end once: call it after
+        :meth:`poll` returned nothing, then :meth:`stop`.
+        """
+        out: list[Reading] = []
+        for path in sorted(self._tails):
+            tail = self._tails[path]
+            if not tail.closed:
+                tail.flush_final_line(out)
+        self._readings += len(out)
+        return out
+
     # -- internals ----------------------------------------------------------------
     def _reject(self, error: RejectError) -> None:
         self._rejects.add(error)

@@ -65,6 +65,7 @@ from detection_engine import EngineDriver  # noqa: E402
 from detection_feeds import (AFTER_ONSET, DRIFT_SIGMA_PER_STEP, FAMILIES, FAULTS, SHIFT_SIGMA,  # noqa: E402
                              Simulator, inject)
 
+from leadline.adapters.replay.scoring import first_start_within  # noqa: E402
 from leadline.detector.engine import FeedSettings  # noqa: E402
 
 RATE_PER_1000 = 0.3
@@ -131,10 +132,10 @@ def run_family(fam, args) -> dict:
             r["refits"] += res.refits
             r["refit_s"] += res.refit_s
             starts = res.starts()
-            hit = starts[(starts >= onset) & (starts < onset + window)]
-            r["found"]["leadline"][kind].append(hit.size > 0)
-            if hit.size:
-                r["delays"][kind].append(int(hit.min() - onset))
+            first = first_start_within(starts, onset, onset + window)  # the hit rule of `leadline tune` too
+            r["found"]["leadline"][kind].append(first is not None)
+            if first is not None:
+                r["delays"][kind].append(int(first - onset))
             r["fa"]["leadline"] += int(np.sum((starts >= 0) & (starts < onset)))
             inc_starts = np.array([a for a, _ in res.incidents()], dtype=int)
             r["fa_incidents"] += int(np.sum((inc_starts >= 0) & (inc_starts < onset)))
