@@ -47,7 +47,6 @@ duplicated either way: the store's key (feed, rule, start) absorbs replays.
 from __future__ import annotations
 
 import logging
-import multiprocessing
 import os
 import threading
 import time
@@ -67,6 +66,7 @@ if TYPE_CHECKING:
     from leadline.detector.engine import Engine
 
 from .backoff import Backoff
+from .refit_pool import refit_pool
 from .reject_summary import RejectSummary, stage_source_rejects
 
 logger = logging.getLogger("leadline.service")
@@ -201,8 +201,7 @@ class Service:
             # nested BLAS threads made each fit several times slower here.
             for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
                 os.environ.setdefault(name, "1")
-            self._pool = ProcessPoolExecutor(max_workers=self.refit_workers,
-                                             mp_context=multiprocessing.get_context("spawn"))
+            self._pool = refit_pool(self.refit_workers)  # workers die with the service (:mod:`.refit_pool`)
         for source in self.sources:
             source.start()
             logger.info(log_fields("source started", source=source.name, kind=type(source).__name__))

@@ -61,10 +61,18 @@ def _upgrade_2_to_3(conn: Connection) -> None:
     schema.build_metadata(3).tables["evidence"].create(conn)
 
 
+def _add_journal(conn: Connection) -> None:
+    """Add ``journal_feeds`` and ``journal`` (the journal of accepted readings and the snapshots)."""
+    md = schema.build_metadata(4)
+    md.tables["journal_feeds"].create(conn)
+    md.tables["journal"].create(conn)
+
+
 #: ``UPGRADES[v]`` turns a version ``v - 1`` database into version ``v``.
 UPGRADES: dict[int, tuple[str, Callable[[Connection], None]]] = {
     2: ("events.start_hour and ix_events_hour for alarm counts per hour", _upgrade_1_to_2),
     3: ("evidence: readings and forecasts around each alarm episode", _upgrade_2_to_3),
+    4: ("journal of accepted readings and per-feed snapshots", _add_journal),
 }
 
 _DESCRIPTIONS = {1: "first schema"} | {v: d for v, (d, _) in UPGRADES.items()}

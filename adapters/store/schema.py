@@ -27,6 +27,10 @@ Tables
     The readings and forecasts around each alarm episode, keyed like the
     event (start, feed, rule); packed by :mod:`.evidence`. Added in schema
     version 3.
+``journal_feeds``, ``journal``
+    The journal of accepted readings and each feed's snapshot with the
+    journal position it covers (:mod:`.journal`). Added in schema version 4
+    (step ``_add_journal``).
 
 Indexes (and the query each one serves)
 ---------------------------------------
@@ -70,10 +74,11 @@ from sqlalchemy import (
 from leadline.detector.events import SEVERITIES
 
 from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
+from .journal import add_journal_tables
 from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
 NOTE_KINDS = ("ack", "comment", "shelve")
 
@@ -266,6 +271,8 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
     Index("ix_reject_samples_source", samples.c.source, samples.c.reason, samples.c.id)
     if version >= 3:
         _evidence_table(md)
+    if version >= 4:
+        add_journal_tables(md)
     return md
 
 
@@ -302,6 +309,8 @@ source_offsets = metadata.tables["source_offsets"]
 reject_counts = metadata.tables["reject_counts"]
 reject_samples = metadata.tables["reject_samples"]
 evidence = metadata.tables["evidence"]
+journal_feeds = metadata.tables["journal_feeds"]
+journal = metadata.tables["journal"]
 
 #: Every table name the store owns (to recognise a foreign or damaged schema).
 TABLE_NAMES = frozenset(metadata.tables)

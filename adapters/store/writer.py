@@ -42,6 +42,7 @@ from leadline.detector.events import SEVERITIES, AlarmEvent
 from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
+from .journal import JournalBuffer, write_journal
 from .evidence import write_evidence
 from .coltypes import dumps_json
 from .dialects import driver_time_for, insert_for
@@ -89,9 +90,12 @@ class WriteBuffer:
         self.rejects: dict[tuple[str, str], _RejectTally] = {}
         #: Evidence records per event key; the latest staged one wins.
         self.evidence: dict[tuple[str, str, datetime], EvidenceRecord] = {}
+        #: Journal rows and snapshots (:mod:`.journal`), written in the same transaction.
+        self.journal = JournalBuffer()
 
     def __len__(self) -> int:
-        return len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
+        return (len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
+                + len(self.journal))
 
     def add_event(self, ev: AlarmEvent) -> None:
         """Stage ``ev``, merged with a staged copy of the same episode.
@@ -359,6 +363,8 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
 
     if buf.rejects:
         _write_rejects(conn, insert, buf)
+    if len(buf.journal):
+        write_journal(conn, schema.metadata, buf.journal, now)
     return len(buf.events)
 
 
