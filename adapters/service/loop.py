@@ -66,6 +66,7 @@ if TYPE_CHECKING:
     from leadline.detector.engine import Engine
 
 from .backoff import Backoff
+from .durability import Durability
 from .refit_pool import refit_pool
 from .reject_summary import RejectSummary, stage_source_rejects
 
@@ -120,6 +121,14 @@ class Service:
         The link to systemd; None sends nothing.
     reject_log_interval_s : float
         At most one reject log line per source and reason this often.
+    durability : leadline.adapters.service.durability.Durability, optional
+        Journal every reading, snapshot the feeds, and recover from both at
+        start (:meth:`run`); None keeps only the checkpoints.
+    refit_install_delay_slots : int, optional
+        Install each fit at the first reading of its feed at or after the
+        request's last slot + this many intervals, waiting for it if needed
+        (deterministic, see :mod:`.durability`); None installs a fit as soon
+        as it is done.
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -129,7 +138,8 @@ class Service:
                  summary_interval_s: float = 60.0, batch_size: int = 2000,
                  clock: Callable[[], datetime] | str = _utc_now, store_retry_base_s: float = 1.0,
                  store_retry_cap_s: float = 60.0, max_pending_readings: int = 200_000, notifier: Any = None,
-                 reject_log_interval_s: float = 60.0) -> None:
+                 reject_log_interval_s: float = 60.0, durability: Durability | None = None,
+                 refit_install_delay_slots: int | None = None) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -170,6 +180,10 @@ class Service:
         self._pending_readings = 0
         self.notifier = notifier
         self.reject_summary = RejectSummary(reject_log_interval_s)
+        #: The journal and snapshots (:mod:`.durability`); None: checkpoints only.
+        self.durability = durability
+        self.refit_install_delay_slots = refit_install_delay_slots
+        self._install_at: dict[Future, float] = {}
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -202,6 +216,8 @@ class Service:
             for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
                 os.environ.setdefault(name, "1")
             self._pool = refit_pool(self.refit_workers)  # workers die with the service (:mod:`.refit_pool`)
+        if self.durability is not None:
+            self._recover()
         for source in self.sources:
             source.start()
             logger.info(log_fields("source started", source=source.name, kind=type(source).__name__))
@@ -214,6 +230,8 @@ class Service:
                     busy = self._poll_once(timeout_s=0.05)
                 self._collect_fits(block=False)
                 self._housekeeping()
+                if until_idle is not None and not busy and self._fits and self.refit_install_delay_slots is not None:
+                    self._collect_fits(block=False, held=True)  # the input has ended: nothing to wait for
                 if until_idle is not None and not busy and not self._fits and until_idle():
                     break
             self._shutdown()
@@ -247,11 +265,31 @@ class Service:
             self.rejects_total += stage_source_rejects(self.store, source, self.reject_summary)
         return busy
 
+    def _recover(self) -> None:
+        """Restore the snapshots and replay the journal after them (:mod:`.durability`)."""
+        n = 0
+        for reading in self.durability.recover(self.engine):
+            self._take(reading)
+            n += 1
+        if n or self.durability.last_seq:
+            logger.info(log_fields("recovered from the journal", feeds=len(self.durability.last_seq), replayed=n))
+
+    def _take(self, reading: Reading) -> None:
+        """One reading through the engine, after any fit due to be installed before it."""
+        if self._fits and self.refit_install_delay_slots is not None:
+            self._install_due(reading.feed_id, reading.timestamp.timestamp())
+        self._handle(self.engine.process(reading), reading)
+        if self._latest_reading is None or reading.timestamp > self._latest_reading:
+            self._latest_reading = reading.timestamp
+
     def _process(self, source: Source, readings: list[Reading]) -> None:
+        durability = self.durability
         for reading in readings:
-            self._handle(self.engine.process(reading), reading)
-            if self._latest_reading is None or reading.timestamp > self._latest_reading:
-                self._latest_reading = reading.timestamp
+            if durability is not None:
+                if durability.seen(reading):
+                    continue
+                durability.journal(reading)
+            self._take(reading)
         for mark in source.durable_marks(readings):
             self.store.stage_offset(mark)
         self._pending_acks.append((source, readings))
@@ -288,20 +326,36 @@ class Service:
         else:
             future = self._pool.submit(self.refit, request)
         self._fits[future] = request
+        if self.refit_install_delay_slots is not None:
+            self._install_at[future] = (float(request.epoch_s[-1])
+                                        + (self.refit_install_delay_slots + 1) * float(request.interval_s))
 
-    def _collect_fits(self, block: bool) -> None:
+    def _install_due(self, feed_id: str, epoch_s: float) -> None:
+        """Install (waiting if needed) the feed's fit whose install time ``epoch_s`` has reached."""
+        for future, request in list(self._fits.items()):
+            if request.feed_id == feed_id and self._install_at.get(future, -float("inf")) <= epoch_s:
+                self._finish_fit(future)
+
+    def _collect_fits(self, block: bool, held: bool = False) -> None:
+        """Install finished fits; with an install delay only when ``block`` or ``held`` (the input ended)."""
+        if self.refit_install_delay_slots is not None and not (block or held):
+            return
         for future in list(self._fits):
             if not (block or future.done()):
                 continue
-            request = self._fits.pop(future)
-            try:
-                fitted, thresholds = future.result()
-            except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
-                logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
-                                          error=f"{type(exc).__name__}: {exc}"))
-                self._handle(self.engine.refit_failed(request.feed_id, str(exc)))
-                continue
-            self._install(request, fitted, thresholds)
+            self._finish_fit(future)
+
+    def _finish_fit(self, future: Future) -> None:
+        request = self._fits.pop(future)
+        self._install_at.pop(future, None)
+        try:
+            fitted, thresholds = future.result()
+        except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
+            logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
+                                      error=f"{type(exc).__name__}: {exc}"))
+            self._handle(self.engine.refit_failed(request.feed_id, str(exc)))
+            return
+        self._install(request, fitted, thresholds)
 
     def _install(self, request: Any, fitted: Any, thresholds: dict) -> None:
         window_start = datetime.fromtimestamp(float(request.epoch_s[0]), tz=timezone.utc)
@@ -325,6 +379,9 @@ class Service:
         if now - self._last_tick >= self.tick_interval_s:
             self._last_tick = now
             self._handle(self.engine.tick(self.clock()))
+        if self.durability is not None and self.durability.snapshot_due(now):
+            self.durability.stage_snapshots(self.engine)
+            self._commit()
         if now - self._last_checkpoint >= self.checkpoint_interval_s:
             self._stage_checkpoints()
             self._commit()
@@ -401,6 +458,8 @@ class Service:
         # Drain: whatever the sources still hold is processed and committed.
         while self._poll_once(timeout_s=0.0):
             pass
+        if self.durability is not None:
+            self.durability.stage_snapshots(self.engine)
         self._stage_checkpoints()
         self._commit(force=True)
         if self.store_backoff.down:
