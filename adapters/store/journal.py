@@ -36,6 +36,7 @@ from sqlalchemy import (BigInteger, Column, Connection, Double, Index, Integer, 
                         UniqueConstraint, bindparam, delete, func, select, update)
 
 from .coltypes import UTCDateTime
+from .dialects import SURROGATE_ID
 
 
 def add_journal_tables(md: MetaData) -> None:
@@ -55,7 +56,7 @@ def add_journal_tables(md: MetaData) -> None:
     journal = Table(
         "journal",
         md,
-        Column("seq", BigInteger().with_variant(Integer, "sqlite"), primary_key=True, autoincrement=False),
+        Column("seq", SURROGATE_ID, primary_key=True, autoincrement=False),
         Column("feed_key", Integer, nullable=False),
         Column("t", Double, nullable=False),
         Column("value", Double, nullable=True),
