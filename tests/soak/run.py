@@ -241,11 +241,11 @@ def chaos_run(scenario: Scenario, folder: Path, *, kills: int, broker_restarts: 
     rng = random.Random(seed)
     result = SoakResult()
     site = Site(folder, scenario, **site_options)
-    actions = ["kill"] * kills + ["broker"] * broker_restarts
+    # The first two kills come while the feeds are still learning; the rest and the broker restarts are shuffled.
+    early = min(kills, 2)
+    actions = ["kill"] * (kills - early) + ["broker"] * broker_restarts
     rng.shuffle(actions)
-    # The first two kills come while the feeds are still learning.
-    actions = ["kill-learning", "kill-learning"] + [a for a in actions if a != "kill"][:0] + actions[2:] \
-        if kills >= 2 else actions
+    actions = ["kill-learning"] * early + actions
     long_index = next((i for i, a in enumerate(actions) if a == "broker"), None) if long_outage_s > 0 else None
     feeder = Feeder(site, steps_per_s)
     try:
