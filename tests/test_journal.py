@@ -59,3 +59,19 @@ def test_a_snapshot_needs_a_journaled_feed(url):
             store.stage_snapshot("fenwick/none", 1, b"x", 1)
     finally:
         store.close()
+
+
+def test_the_latest_reading_time_per_feed_outlives_truncation(url):
+    store = open_store(url)
+    seqs = [store.stage_reading("fenwick/a", t, 1.0) for t in (120.0, 60.0, 180.0)]
+    store.stage_snapshot("fenwick/a", seqs[-1], b"s1", 1)
+    store.flush()
+    store.stage_reading("fenwick/a", 30.0, 1.0)  # a late one does not move it back
+    store.stage_snapshot("fenwick/a", seqs[-1] + 1, b"s2", 1)
+    store.flush()
+    store.stage_snapshot("fenwick/a", seqs[-1] + 1, b"s3", 1)
+    store.flush()
+    state = store.open_journal()
+    assert state.rows == []  # everything covered by the previous snapshot is gone
+    assert state.last_t == {"fenwick/a": 180.0}
+    store.close()

@@ -27,10 +27,15 @@ flight, so a restored feed requests its next fit at the same slot as the
 run it continues.
 
 Duplicates: an MQTT message committed but not yet acknowledged when the
-service died comes again. The journal keeps the readings of at least one
-snapshot interval (truncation lags one snapshot), and a reading whose
-(feed, time) is among the journaled ones seen since the start is dropped
-(and acknowledged with its batch).
+service died comes again, and a QoS 1 publisher that lost its broker may
+send a message twice, the copy much later. A reading is dropped as a repeat
+(and acknowledged with its batch) when its (feed, time) was journaled in
+this process or is among the journal's kept rows (truncation lags one
+snapshot), or when its time is not after the latest reading time the feed
+had journaled before this start (``journal_feeds.last_t``). The last rule
+also drops a reading that is merely late by more than the outage; the grid
+would have refused it as out of order anyway, so no model or event differs,
+but it is counted as a duplicate, not journaled.
 """
 
 from __future__ import annotations
@@ -78,6 +83,7 @@ class Durability:
         self._since_snapshot = 0
         self._last_snapshot = time.monotonic()
         self.duplicates = 0
+        self._before_start: dict[str, float] = {}
         self.replayed = 0
 
     def _remember(self, feed_id: str, epoch_s: float) -> None:
@@ -93,6 +99,7 @@ class Durability:
     def recover(self, engine: Any) -> Iterator[Reading]:
         """Restore every snapshot into ``engine``; yield the journal's readings to replay, in journal order."""
         state = self.store.open_journal()
+        self._before_start = dict(state.last_t)
         positions: dict[str, int] = {}
         for feed_id, (seq, version, blob) in state.snapshots.items():
             try:
@@ -124,8 +131,10 @@ class Durability:
 
     def seen(self, reading: Reading) -> bool:
         """True for a reading already journaled (a message that came again); it is dropped."""
+        epoch_s = reading.timestamp.timestamp()
         entry = self._recent.get(reading.feed_id)
-        if entry is not None and reading.timestamp.timestamp() in entry[0]:
+        before = self._before_start.get(reading.feed_id)
+        if (entry is not None and epoch_s in entry[0]) or (before is not None and epoch_s <= before):
             self.duplicates += 1
             return True
         return False

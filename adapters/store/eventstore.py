@@ -268,6 +268,7 @@ class EventWriter(StoreHandle):
             self._next_seq += 1
             j.rows.append((seq, key, float(epoch_s), bytes_of_value(value)))
             j.counts[key] = j.counts.get(key, 0) + 1
+            j.last_t[key] = max(j.last_t.get(key, float(epoch_s)), float(epoch_s))
             return seq
 
     def stage_snapshot(self, feed_id: str, journal_seq: int, state: bytes, model_version: int) -> None:

@@ -33,7 +33,7 @@ import math
 from dataclasses import dataclass, field
 
 from sqlalchemy import (BigInteger, Column, Connection, Double, Index, Integer, LargeBinary, MetaData, Table, Text,
-                        UniqueConstraint, bindparam, delete, func, select, update)
+                        UniqueConstraint, bindparam, case, delete, func, or_, select, update)
 
 from .coltypes import UTCDateTime
 from .dialects import SURROGATE_ID
@@ -47,6 +47,7 @@ def add_journal_tables(md: MetaData) -> None:
         Column("feed_key", Integer, primary_key=True, autoincrement=False),
         Column("feed_id", Text, nullable=False),
         Column("journaled", BigInteger, nullable=False),
+        Column("last_t", Double, nullable=True),
         Column("snapshot_seq", BigInteger, nullable=True),
         Column("model_version", Integer, nullable=True),
         Column("snapshot", LargeBinary, nullable=True),
@@ -71,6 +72,8 @@ class JournalBuffer:
     rows: list[tuple[int, int, float, float | None]] = field(default_factory=list)
     new_feeds: dict[int, str] = field(default_factory=dict)
     counts: dict[int, int] = field(default_factory=dict)
+    #: feed_key -> the latest reading time in this flush
+    last_t: dict[int, float] = field(default_factory=dict)
     #: feed_key -> (journal seq covered, model version, state bytes)
     snapshots: dict[int, tuple[int, int, bytes]] = field(default_factory=dict)
 
@@ -89,6 +92,8 @@ class JournalState:
     #: every kept row in journal order: (seq, feed_id, t, value)
     rows: list[tuple[int, str, float, float]]
     journaled: dict[str, int]
+    #: feed_id -> the latest reading time ever journaled (kept across truncation)
+    last_t: dict[str, float] = field(default_factory=dict)
 
 
 def write_journal(conn: Connection, md: MetaData, buf: JournalBuffer, now) -> None:
@@ -99,8 +104,11 @@ def write_journal(conn: Connection, md: MetaData, buf: JournalBuffer, now) -> No
     if buf.rows:
         conn.execute(j.insert(), [{"seq": s, "feed_key": k, "t": t, "value": v} for s, k, t, v in buf.rows])
     if buf.counts:
-        conn.execute(update(jf).where(jf.c.feed_key == bindparam("k")).values(journaled=jf.c.journaled + bindparam("n")),
-                     [{"k": k, "n": n} for k, n in buf.counts.items()])
+        t = bindparam("t")
+        conn.execute(update(jf).where(jf.c.feed_key == bindparam("k")).values(
+            journaled=jf.c.journaled + bindparam("n"),
+            last_t=case((or_(jf.c.last_t.is_(None), jf.c.last_t < t), t), else_=jf.c.last_t)),
+            [{"k": k, "n": n, "t": buf.last_t[k]} for k, n in buf.counts.items()])
     for key, (seq, version, state) in buf.snapshots.items():
         previous = conn.execute(select(jf.c.snapshot_seq).where(jf.c.feed_key == key)).scalar()
         if previous is not None:
@@ -116,10 +124,13 @@ def read_journal(conn: Connection, md: MetaData) -> JournalState:
     names: dict[int, str] = {}
     snapshots: dict[str, tuple[int, int, bytes]] = {}
     journaled: dict[str, int] = {}
+    last_t: dict[str, float] = {}
     top = 0
     for r in conn.execute(select(jf)):
         keys[r.feed_id], names[r.feed_key] = r.feed_key, r.feed_id
         journaled[r.feed_id] = int(r.journaled)
+        if r.last_t is not None:
+            last_t[r.feed_id] = float(r.last_t)
         if r.snapshot_seq is not None:
             snapshots[r.feed_id] = (int(r.snapshot_seq), int(r.model_version), bytes(r.snapshot))
             top = max(top, int(r.snapshot_seq))
@@ -127,7 +138,7 @@ def read_journal(conn: Connection, md: MetaData) -> JournalState:
             for s, k, t, v in conn.execute(select(j.c.seq, j.c.feed_key, j.c.t, j.c.value).order_by(j.c.seq))]
     last = conn.execute(select(func.max(j.c.seq))).scalar()
     top = max(top, int(last or 0))
-    return JournalState(keys, top + 1, snapshots, rows, journaled)
+    return JournalState(keys, top + 1, snapshots, rows, journaled, last_t)
 
 
 def journal_counts(conn: Connection, md: MetaData) -> dict[str, int]:
