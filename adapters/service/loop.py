@@ -37,11 +37,14 @@ checkpoints, and :meth:`Service.run` returns 0.
 
 Notes
 -----
-Readings processed after the last checkpoint and before a crash are not
-replayed into the model when they caused no events and their marks were
-committed; after a restart the engine resumes from the checkpoint and the
-missing slots are predict-only gaps. No committed event is lost or
-duplicated either way: the store's key (feed, rule, start) absorbs replays.
+With a :class:`~.durability.Durability` (``[store] journal``, the default of
+``leadline run``) every reading is journaled in the same transaction as
+the events and the offsets, and a restart replays the journal after each
+feed's snapshot, so no committed reading is skipped by the model; fits are
+installed at a fixed point in reading time so the replay matches the run
+(:mod:`.durability`). Without one, readings processed after the last
+checkpoint are predict-only gaps after a crash. Either way the store's key
+(feed, rule, start) absorbs replayed events.
 """
 
 from __future__ import annotations
