@@ -9,9 +9,9 @@ and drives the real ``leadline run --replay`` as a subprocess, fed by a
 followed CSV file and MQTT QoS 1 messages (:mod:`.scenario`). It first runs
 the service once undisturbed on the whole input (the *clean* run), then
 again on the same input, paced, while it SIGKILLs the service at random
-moments (the first ones while the feeds are still learning, some just after
-a refit was requested, the rest at random times, which land in flushes
-too), restarts it, and restarts the broker (one of them a long outage). At
+moments (the first two while the feeds are still learning, a quarter as soon as
+SQLite's WAL file changes, i.e. while a flush writes, a quarter just after a
+refit was requested, the rest at random times), restarts it, and restarts the broker (one of them a long outage). At
 the end it compares the two stores' events and prints:
 
 - lost / extra: episodes (feed, rule, start) of one run missing in the other;
@@ -63,6 +63,7 @@ class SoakResult:
     kills: int = 0
     kills_learning: int = 0
     kills_after_refit_request: int = 0
+    kills_in_flush: int = 0
     broker_restarts: int = 0
     longest_outage_s: float = 0.0
     elapsed_s: float = 0.0
@@ -79,7 +80,7 @@ class SoakResult:
     def lines(self) -> list[str]:
         return [
             f"kills={self.kills} (learning {self.kills_learning}, just after a refit request "
-            f"{self.kills_after_refit_request}) broker_restarts={self.broker_restarts} "
+            f"{self.kills_after_refit_request}, as the WAL grew {self.kills_in_flush}) broker_restarts={self.broker_restarts} "
             f"longest_outage_s={self.longest_outage_s:g} elapsed_s={self.elapsed_s:.0f}",
             f"events clean={self.clean_events} lost={len(self.lost)} extra={len(self.extra)} "
             f"changed={len(self.changed)} stuck_active={len(self.stuck_active)}",
@@ -260,7 +261,17 @@ def chaos_run(scenario: Scenario, folder: Path, *, kills: int, broker_restarts: 
                 result.kills += 1
                 site.start_service()
             elif action == "kill":
-                if rng.random() < 0.3:
+                draw = rng.random()
+                if draw < 0.25:
+                    # during a flush: as soon as SQLite's WAL file changes, a write transaction is under way
+                    wal = site.folder / "leadline.db-wal"
+                    before = _file_state(wal)
+                    deadline = time.monotonic() + 10.0
+                    while _file_state(wal) == before and time.monotonic() < deadline:
+                        time.sleep(0.0005)
+                    if _file_state(wal) != before:
+                        result.kills_in_flush += 1
+                elif draw < 0.5:
                     # just after a refit was requested: the fit is in the pool when the service dies
                     count = site.log_text().count("refit requested")
                     try:
@@ -297,6 +308,14 @@ def chaos_run(scenario: Scenario, folder: Path, *, kills: int, broker_restarts: 
     finally:
         feeder.publisher.close()
         site.close()
+
+
+def _file_state(path: Path) -> tuple[int, int]:
+    try:
+        st = path.stat()
+    except OSError:
+        return (-1, -1)
+    return (st.st_size, st.st_mtime_ns)
 
 
 def _peak(event) -> float:
