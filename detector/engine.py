@@ -179,6 +179,15 @@ class Engine:
         return {fid: (feed_checkpoint(feed), feed.model_version) for fid, feed in self._feeds.items()
                 if feed.monitor is not None and feed.state == "watching"}
 
+    def snapshot_ready(self, feed_id: str) -> bool:
+        """True when the feed watches with no fit in flight: a snapshot of it can be resumed exactly."""
+        feed = self._get(feed_id)
+        return feed.state == "watching" and feed.monitor is not None and feed.pending is None
+
+    def model_version_of(self, feed_id: str) -> int | None:
+        """The version of the model the feed watches with (None before its first)."""
+        return self._get(feed_id).model_version
+
     def restore(self, feed_id: str, state: bytes, model_version: int) -> None:
         """Resume a feed from its checkpoint: watching at once, no learning phase, no refit.
 

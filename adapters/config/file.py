@@ -29,6 +29,10 @@ Schema
     flush_events            integer   ...or as soon as this many events are staged (default 500)
     retry_base_s            number    a failed flush is retried after this long, doubling... (1.0)
     retry_cap_s             number    ...up to this wait (default 60)
+    journal                 bool      journal every accepted reading with the events, and
+                                      replay it after a crash (default true)
+    snapshot_interval_s     number    snapshot every feed's state at least this often (30)
+    snapshot_readings       integer   ...or after this many journaled readings (100000)
     ======================  ========  ==========================================================
 
 ``[[sources.csv]]`` (followed files; any number)
@@ -138,6 +142,10 @@ Schema
     window_span             text      rolling refit span (default: the feed's ``train_span``)
     workers                 integer   refit processes, at most one per core (default: cores - 1,
                                       at least 1)
+    install_delay_slots     integer   a finished fit goes into the stream at the first reading
+                                      at or after its request's last slot + this many slots,
+                                      waiting for the fit if needed, so a replay after a
+                                      crash installs it at the same reading (default 10)
     ======================  ========  ==========================================================
 
 ``[publish]`` (optional: alarms to MQTT)
@@ -221,8 +229,9 @@ _SHIFT_TIMES = re.compile(r"\s*(\d{1,2}):(\d{2})\s*-\s*(\d{1,2}):(\d{2})\s*\Z")
 RESERVED_SHIFT_NAMES = ("last", "current", "timezone")
 
 TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts", "shelving", "site")
-STORE_KEYS = ("url", "flush_interval_s", "flush_events", "retry_base_s", "retry_cap_s")
-REFIT_KEYS = ("every", "on_degraded", "window_points", "window_span", "workers")
+STORE_KEYS = ("url", "flush_interval_s", "flush_events", "retry_base_s", "retry_cap_s", "journal",
+              "snapshot_interval_s", "snapshot_readings")
+REFIT_KEYS = ("every", "on_degraded", "window_points", "window_span", "workers", "install_delay_slots")
 PUBLISH_KEYS = ("broker", "client_id", "topic_template", "status_topic_template", "max_queued_messages")
 EVENT_TOPIC_FIELDS = ("feed", "rule", "severity")
 
@@ -245,6 +254,9 @@ class StoreConfig:
     flush_events: int = 500
     retry_base_s: float = 1.0
     retry_cap_s: float = 60.0
+    journal: bool = True
+    snapshot_interval_s: float = 30.0
+    snapshot_readings: int = 100_000
 
     @property
     def safe_url(self) -> str:
@@ -271,6 +283,7 @@ class RefitConfig:
     window_points: int | None = None
     window_span_s: float | None = None
     workers: int = 1
+    install_delay_slots: int = 10
 
 
 @dataclass(frozen=True)
@@ -509,6 +522,9 @@ def _read_store(reader: TableReader | None, base: Path, problems: Problems) -> S
         flush_events=reader.get("flush_events", integer(1, 1_000_000), 500),
         retry_base_s=retry_base_s,
         retry_cap_s=retry_cap_s,
+        journal=reader.get("journal", boolean, True),
+        snapshot_interval_s=reader.get("snapshot_interval_s", number(0, 86400, low_open=True), 30.0),
+        snapshot_readings=reader.get("snapshot_readings", integer(1, 100_000_000), 100_000),
     )
 
 
@@ -573,6 +589,7 @@ def _read_refit(reader: TableReader | None, problems: Problems) -> RefitConfig:
         window_points=reader.get("window_points", integer(config_feeds.MIN_TRAIN_POINTS), None),
         window_span_s=reader.get("window_span", duration_s, None),
         workers=workers,
+        install_delay_slots=reader.get("install_delay_slots", integer(0, 1_000_000), 10),
     )
 
 

@@ -43,17 +43,19 @@ checkpoints, and :meth:`Service.run` returns 0.
 
 Notes
 -----
-Readings processed after the last checkpoint and before a crash are not
-replayed into the model when they caused no events and their marks were
-committed; after a restart the engine resumes from the checkpoint and the
-missing slots are predict-only gaps. No committed event is lost or
-duplicated either way: the store's key (feed, rule, start) absorbs replays.
+With a :class:`~.durability.Durability` (``[store] journal``, the default of
+``leadline run``) every reading is journaled in the same transaction as
+the events and the offsets, and a restart replays the journal after each
+feed's snapshot, so no committed reading is skipped by the model; fits are
+installed at a fixed point in reading time so the replay matches the run
+(:mod:`.durability`). Without one, readings processed after the last
+checkpoint are predict-only gaps after a crash. Either way the store's key
+(feed, rule, start) absorbs replayed events.
 """
 
 from __future__ import annotations
 
 import logging
-import multiprocessing
 import os
 import threading
 import time
@@ -75,6 +77,8 @@ if TYPE_CHECKING:
 from .accepts import AcceptPoller
 from .backoff import Backoff
 from .feed_reports import FeedReports
+from .durability import Durability
+from .refit_pool import refit_pool
 from .reject_summary import RejectSummary, stage_source_rejects
 
 logger = logging.getLogger("leadline.service")
@@ -143,6 +147,14 @@ class Service(FeedReports):
         event (warning, opened and closed at once).
     accept_poll_interval_s : float
         How often the store is asked for new ``accept`` notes (:mod:`.accepts`).
+    durability : leadline.adapters.service.durability.Durability, optional
+        Journal every reading, snapshot the feeds, and recover from both at
+        start (:meth:`run`); None keeps only the checkpoints.
+    refit_install_delay_slots : int, optional
+        Install each fit at the first reading of its feed at or after the
+        request's last slot + this many intervals, waiting for it if needed
+        (deterministic, see :mod:`.durability`); None installs a fit as soon
+        as it is done.
     """
 
     def __init__(self, *, engine: Engine, store: EventSink, sources: Sequence[Source],
@@ -155,7 +167,8 @@ class Service(FeedReports):
                  reject_log_interval_s: float = 60.0, heartbeat_interval_s: float = 5.0,
                  shelving_refresh_s: float = 5.0, service_name: str = "leadline",
                  metadata: Callable[[str], dict[str, Any]] | None = None,
-                 accept_poll_interval_s: float = 5.0) -> None:
+                 accept_poll_interval_s: float = 5.0, durability: Durability | None = None,
+                 refit_install_delay_slots: int | None = None) -> None:
         from leadline.detector.engine import run_refit_with_thresholds
 
         self.engine = engine
@@ -213,6 +226,10 @@ class Service(FeedReports):
         self.progress: Callable[[Service], None] | None = None
         #: The operators' accept notes, applied to the engine (:mod:`.accepts`).
         self.accepts = AcceptPoller(store, accept_poll_interval_s)
+        #: The journal and snapshots (:mod:`.durability`); None: checkpoints only.
+        self.durability = durability
+        self.refit_install_delay_slots = refit_install_delay_slots
+        self._install_at: dict[Future, float] = {}
 
     def _reading_clock(self) -> datetime:
         return self._latest_reading or datetime(1970, 1, 1, tzinfo=timezone.utc)
@@ -244,8 +261,9 @@ class Service(FeedReports):
             # nested BLAS threads made each fit several times slower here.
             for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
                 os.environ.setdefault(name, "1")
-            self._pool = ProcessPoolExecutor(max_workers=self.refit_workers,
-                                             mp_context=multiprocessing.get_context("spawn"))
+            self._pool = refit_pool(self.refit_workers)  # workers die with the service (:mod:`.refit_pool`)
+        if self.durability is not None:
+            self._recover()
         for source in self.sources:
             source.start()
             logger.info(log_fields("source started", source=source.name, kind=type(source).__name__))
@@ -258,6 +276,8 @@ class Service(FeedReports):
                     busy = self._poll_once(timeout_s=0.05)
                 self._collect_fits(block=False)
                 self._housekeeping()
+                if until_idle is not None and not busy and self._fits and self.refit_install_delay_slots is not None:
+                    self._collect_fits(block=False, held=True)  # the input has ended: nothing to wait for
                 if until_idle is not None and not busy and not self._fits and until_idle():
                     break
             self._shutdown()
@@ -291,17 +311,37 @@ class Service(FeedReports):
             self.rejects_total += stage_source_rejects(self.store, source, self.reject_summary)
         return busy
 
+    def _recover(self) -> None:
+        """Restore the snapshots and replay the journal after them (:mod:`.durability`)."""
+        n = 0
+        for reading in self.durability.recover(self.engine):
+            self._take(reading)
+            n += 1
+        if n or self.durability.last_seq:
+            logger.info(log_fields("recovered from the journal", feeds=len(self.durability.last_seq), replayed=n))
+
+    def _take(self, reading: Reading) -> None:
+        """One reading through the engine, after any fit due to be installed before it."""
+        if self._fits and self.refit_install_delay_slots is not None:
+            self._install_due(reading.feed_id, reading.timestamp.timestamp())
+        self._handle(self.engine.process(reading), reading)
+        if self._latest_reading is None or reading.timestamp > self._latest_reading:
+            self._latest_reading = reading.timestamp
+
     def _process(self, source: Source, readings: list[Reading]) -> None:
+        durability = self.durability
         for reading in readings:
+            if durability is not None:
+                if durability.seen(reading):
+                    continue
+                durability.journal(reading)
             if reading.feed_id not in self.feed_sources and self.metadata is not None:
                 unit = self.metadata(reading.feed_id).get("unit")
                 if unit:
                     self.feed_units.setdefault(reading.feed_id, unit)
-            self._handle(self.engine.process(reading), reading)
+            self._take(reading)
             self._changed_feeds.add(reading.feed_id)
             self.feed_sources[reading.feed_id] = source.name
-            if self._latest_reading is None or reading.timestamp > self._latest_reading:
-                self._latest_reading = reading.timestamp
         take_units = getattr(source, "take_units", None)  # optional: sources that carry units (SenML "u")
         if callable(take_units):
             for feed_id, unit in take_units().items():
@@ -346,20 +386,36 @@ class Service(FeedReports):
         else:
             future = self._pool.submit(self.refit, request)
         self._fits[future] = request
+        if self.refit_install_delay_slots is not None:
+            self._install_at[future] = (float(request.epoch_s[-1])
+                                        + (self.refit_install_delay_slots + 1) * float(request.interval_s))
 
-    def _collect_fits(self, block: bool) -> None:
+    def _install_due(self, feed_id: str, epoch_s: float) -> None:
+        """Install (waiting if needed) the feed's fit whose install time ``epoch_s`` has reached."""
+        for future, request in list(self._fits.items()):
+            if request.feed_id == feed_id and self._install_at.get(future, -float("inf")) <= epoch_s:
+                self._finish_fit(future)
+
+    def _collect_fits(self, block: bool, held: bool = False) -> None:
+        """Install finished fits; with an install delay only when ``block`` or ``held`` (the input ended)."""
+        if self.refit_install_delay_slots is not None and not (block or held):
+            return
         for future in list(self._fits):
             if not (block or future.done()):
                 continue
-            request = self._fits.pop(future)
-            try:
-                fitted, thresholds = future.result()
-            except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
-                logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
-                                          error=f"{type(exc).__name__}: {exc}"))
-                self._handle(self.engine.refit_failed(request.feed_id, str(exc)))
-                continue
-            self._install(request, fitted, thresholds)
+            self._finish_fit(future)
+
+    def _finish_fit(self, future: Future) -> None:
+        request = self._fits.pop(future)
+        self._install_at.pop(future, None)
+        try:
+            fitted, thresholds = future.result()
+        except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
+            logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
+                                      error=f"{type(exc).__name__}: {exc}"))
+            self._handle(self.engine.refit_failed(request.feed_id, str(exc)))
+            return
+        self._install(request, fitted, thresholds)
 
     def _install(self, request: Any, fitted: Any, thresholds: dict) -> None:
         window_start = datetime.fromtimestamp(float(request.epoch_s[0]), tz=timezone.utc)
@@ -385,6 +441,9 @@ class Service(FeedReports):
             self._handle(self.engine.tick(self.clock()))
         if self.accepts.due(now):
             self._apply_accepts(now)
+        if self.durability is not None and self.durability.snapshot_due(now):
+            self.durability.stage_snapshots(self.engine)
+            self._commit()
         if now - self._last_checkpoint >= self.checkpoint_interval_s:
             self._stage_checkpoints()
             self._commit()
@@ -480,6 +539,8 @@ class Service(FeedReports):
         # Drain: whatever the sources still hold is processed and committed.
         while self._poll_once(timeout_s=0.0):
             pass
+        if self.durability is not None:
+            self.durability.stage_snapshots(self.engine)
         self._stage_checkpoints()
         self._commit(force=True)
         if self.store_backoff.down:

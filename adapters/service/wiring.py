@@ -33,6 +33,7 @@ from leadline.detector.spec import ModelSpec
 from ..config.file import Config
 from ..sinks.file_modes import create_private_file
 from ..ports import Source
+from .durability import Durability
 from .loop import Service, log_fields
 
 if TYPE_CHECKING:
@@ -119,7 +120,12 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
         return cache[feed_id]
 
     engine = Engine(settings_for)
-    for feed_id, (state, version) in store.load_checkpoints().items():
+    durability = None
+    if config.store.journal:
+        # Snapshots and the journal after them are restored when the service starts (:mod:`.durability`).
+        durability = Durability(store, snapshot_interval_s=config.store.snapshot_interval_s,
+                                snapshot_every_readings=config.store.snapshot_readings)
+    for feed_id, (state, version) in ({} if durability else store.load_checkpoints()).items():
         try:
             engine.restore(feed_id, state, version)
         except (StateFormatError, ConfigError) as exc:
@@ -147,7 +153,9 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
     workers = config.refit.workers if refit_workers is None else refit_workers
     return Service(engine=engine, store=store, sources=sources, publisher=publisher, refit_workers=workers,
                    clock="readings" if replay else _wall_clock, store_retry_base_s=config.store.retry_base_s,
-                   store_retry_cap_s=config.store.retry_cap_s, metadata=feed_metadata_of(config))
+                   store_retry_cap_s=config.store.retry_cap_s, durability=durability,
+                   refit_install_delay_slots=config.refit.install_delay_slots,
+                   metadata=feed_metadata_of(config))
 
 
 def feed_metadata_of(config: Config):

@@ -36,6 +36,7 @@ from . import schema
 from .connect import create_store_engine, read_transaction, resolve_url, write_transaction
 from .handle import StoreHandle, require_text as _require_text, require_utc as _require_utc
 from .migrations import ensure_schema
+from .journal import JournalState, bytes_of_value, journal_counts, read_journal
 from .reads import EventQueries
 from .dialects import insert_for
 from .feed_status import FeedStatusRow, Heartbeat
@@ -82,6 +83,8 @@ class EventWriter(StoreHandle):
         self._buffer = WriteBuffer()
         self._lock = threading.RLock()
         self._last_flush = time.monotonic()
+        self._feed_keys: dict[str, int] = {}
+        self._next_seq: int | None = None
 
     # ------------------------------------------------------------------ info
     @property
@@ -289,6 +292,46 @@ class EventWriter(StoreHandle):
         self._check_open()
         with read_transaction(self._engine, "reading accept notes") as conn:
             return accept_notes_after(conn, int(note_id))
+
+    # ---------------------------------------------------------------- journal
+    def open_journal(self) -> JournalState:
+        """Read the journal (:mod:`.journal`): snapshots, kept rows, feed keys; staging continues after it."""
+        self._check_open()
+        with self._lock:
+            state = self._read("reading the journal", read_journal, schema.metadata)
+            self._feed_keys = dict(state.feed_keys)
+            self._next_seq = state.next_seq
+            return state
+
+    def stage_reading(self, feed_id: str, epoch_s: float, value: float) -> int:
+        """Journal one accepted reading; return its journal position (commits with the next flush)."""
+        with self._lock:
+            if self._next_seq is None:
+                self.open_journal()
+            j = self._buffer.journal
+            key = self._feed_keys.get(feed_id)
+            if key is None:
+                key = len(self._feed_keys) + 1
+                self._feed_keys[feed_id] = key
+                j.new_feeds[key] = feed_id
+            seq = self._next_seq
+            self._next_seq += 1
+            j.rows.append((seq, key, float(epoch_s), bytes_of_value(value)))
+            j.counts[key] = j.counts.get(key, 0) + 1
+            j.last_t[key] = max(j.last_t.get(key, float(epoch_s)), float(epoch_s))
+            return seq
+
+    def stage_snapshot(self, feed_id: str, journal_seq: int, state: bytes, model_version: int) -> None:
+        """Stage a feed's snapshot covering the journal up to ``journal_seq`` (the feed must be journaled)."""
+        with self._lock:
+            key = self._feed_keys.get(feed_id)
+            if key is None:
+                raise StoreError(f"snapshot of {feed_id!r}: the feed has no journaled reading")
+            self._buffer.journal.snapshots[key] = (int(journal_seq), int(model_version), bytes(state))
+
+    def journal_counts(self) -> dict[str, int]:
+        """``{feed_id: readings ever journaled}`` (committed)."""
+        return self._read("counting the journal", journal_counts, schema.metadata)
 
     def flush(self) -> int:
         """Commit everything staged in ONE transaction; return the events written.

@@ -82,12 +82,20 @@ def _add_incidents_and_accept_notes(conn: Connection) -> None:
     new.tables["service_marks"].create(conn)
 
 
+def _add_journal(conn: Connection) -> None:
+    """Add ``journal_feeds`` and ``journal`` (the journal of accepted readings and the snapshots)."""
+    md = schema.build_metadata(6)
+    md.tables["journal_feeds"].create(conn)
+    md.tables["journal"].create(conn)
+
+
 #: ``UPGRADES[v]`` turns a version ``v - 1`` database into version ``v``.
 UPGRADES: dict[int, tuple[str, Callable[[Connection], None]]] = {
     2: ("events.start_hour and ix_events_hour for alarm counts per hour", _upgrade_1_to_2),
     3: ("evidence: readings and forecasts around each alarm episode", _upgrade_2_to_3),
     4: ("feed_status and service_heartbeat: each feed's state and the service's liveness", _add_feed_status),
     5: ("events.incident_start, the accept note kind and service_marks", _add_incidents_and_accept_notes),
+    6: ("journal of accepted readings and per-feed snapshots", _add_journal),
 }
 
 _DESCRIPTIONS = {1: "first schema"} | {v: d for v, (d, _) in UPGRADES.items()}

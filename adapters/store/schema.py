@@ -35,6 +35,10 @@ Tables
 ``service_heartbeat``
     One row per running service: start time, last beat, beat interval,
     process id, leadline version. Added in schema version 4.
+``journal_feeds``, ``journal``
+    The journal of accepted readings and each feed's snapshot with the
+    journal position it covers (:mod:`.journal`). Added in schema version 6
+    (step ``_add_journal``).
 
 Indexes (and the query each one serves)
 ---------------------------------------
@@ -78,10 +82,11 @@ from sqlalchemy import (
 from leadline.detector.events import SEVERITIES
 
 from .coltypes import JSONText, NanFloat, UInt64, UTCDateTime
+from .journal import add_journal_tables
 from .dialects import SURROGATE_ID, make_notes_append_only, partial_index_where
 
 #: The schema version this build writes and reads.
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 
 #: Note kinds at each schema version: "accept" (an operator accepts a
 #: level shift as the feed's new normal) came with version 4.
@@ -288,6 +293,8 @@ def build_metadata(version: int = SCHEMA_VERSION) -> MetaData:
         feed_status_tables(md)
     if version >= 5:
         _service_marks_table(md)
+    if version >= 6:
+        add_journal_tables(md)
     return md
 
 
@@ -368,6 +375,9 @@ evidence = metadata.tables["evidence"]
 feed_status = metadata.tables["feed_status"]
 service_heartbeat = metadata.tables["service_heartbeat"]
 service_marks = metadata.tables["service_marks"]
+
+journal_feeds = metadata.tables["journal_feeds"]
+journal = metadata.tables["journal"]
 
 #: Every table name the store owns (to recognise a foreign or damaged schema).
 TABLE_NAMES = frozenset(metadata.tables)

@@ -42,6 +42,7 @@ from leadline.detector.events import SEVERITIES, AlarmEvent
 from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
+from .journal import JournalBuffer, write_journal
 from .evidence import write_evidence
 from .feed_status import FeedStatusRow, Heartbeat, write_feed_status, write_heartbeat
 from .coltypes import dumps_json
@@ -97,9 +98,12 @@ class WriteBuffer:
         #: Named service marks (``service_marks``); the latest staged value wins.
         self.marks: dict[str, int] = {}
 
+        #: Journal rows and snapshots (:mod:`.journal`), written in the same transaction.
+        self.journal = JournalBuffer()
+
     def __len__(self) -> int:
         return (len(self.events) + len(self.checkpoints) + len(self.offsets) + len(self.rejects) + len(self.evidence)
-                + len(self.feed_status) + (self.heartbeat is not None) + len(self.marks))
+                + len(self.feed_status) + (self.heartbeat is not None) + len(self.marks) + len(self.journal))
 
     def add_event(self, ev: AlarmEvent) -> None:
         """Stage ``ev``, merged with a staged copy of the same episode.
@@ -382,6 +386,8 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
         stmt = stmt.on_conflict_do_update(index_elements=[sm.c.name],
                                           set_={"value": stmt.excluded.value, "updated_at": stmt.excluded.updated_at})
         conn.execute(stmt, [{"name": k, "value": int(v), "updated_at": now} for k, v in buf.marks.items()])
+    if len(buf.journal):
+        write_journal(conn, schema.metadata, buf.journal, now)
     return len(buf.events)
 
 
