@@ -47,10 +47,10 @@ def site(tmp_path, monkeypatch):
 
 
 def test_events_of_a_shelved_feed_are_left_out_unless_asked_for(site, capsys):
-    assert site("events", "--since", "12h", "--format", "json") == 0
+    assert site("events", "--each-event", "--since", "12h", "--format", "json") == 0
     listed = [e["detail"] for e in json.loads(capsys.readouterr().out)["events"]]
     assert listed == ["level drifting", "after the works"]
-    assert site("events", "--since", "12h", "--format", "json", "--include-shelved") == 0
+    assert site("events", "--each-event", "--since", "12h", "--format", "json", "--include-shelved") == 0
     listed = [e["detail"] for e in json.loads(capsys.readouterr().out)["events"]]
     assert listed == ["during the works", "level drifting", "after the works"]
     assert site("events", "--since", "12h") == 0

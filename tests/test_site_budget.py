@@ -84,4 +84,6 @@ def test_status_shows_the_alarm_load_and_the_fit_problems_with_their_remedy(tmp_
     assert main(["status", "--config", str(config)]) == 0
     text = capsys.readouterr().out
     assert "0.05 per hour, 0.6 per 12-hour shift" in text
-    assert "tarnbeck/p1: the AR root is close to 1. Remedy: try d = 1" in text
+    # the health view's FIT PROBLEMS column, on the feed's own line
+    line = next(row for row in text.splitlines() if row.startswith("tarnbeck/p1"))
+    assert "the AR root is close to 1. (advice: try d = 1)" in line

@@ -6,6 +6,7 @@ import csv
 import numpy as np
 import pytest
 
+from leadline.detector.rules import registry
 from leadline.adapters.cli import main
 from leadline.adapters.config.file import load_config
 from leadline.adapters.replay.labels import read_labels
@@ -27,7 +28,8 @@ def test_every_combination_in_order():
     assert applied.false_alarms_per_week == 0.1
     assert "ewma" not in applied.monitor.rules and "spike" in applied.monitor.rules
     assert applied.monitor.lifecycles["spike"].on_delay_k == 2
-    assert applied.monitor.lifecycles["cusum"].off_delay_steps == 12  # the rule's own off-delay is kept
+    # the rule's own off-delay is kept
+    assert applied.monitor.lifecycles["cusum"].off_delay_steps == registry.entry("cusum").lifecycle.off_delay_steps
 
 
 @pytest.mark.parametrize("option, words", [("budget=1", "NAME one of"), ("on_delay=0", "whole number"),

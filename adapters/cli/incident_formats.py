@@ -19,7 +19,8 @@ from typing import Any, Mapping, Sequence, TextIO
 
 from leadline.detector.events import CAUTION
 
-from .formats import _number, _short, event_record, write_aligned
+from .formats import _number, event_record, write_aligned
+from .words import show_abs_z
 from .review import iso, print_caution, show_time
 from ..sinks.safe_text import csv_text_cell, safe_text
 from ..store.records import Incident
@@ -86,7 +87,7 @@ def write_incidents_json(incidents: Sequence[Incident], out: TextIO, *, window: 
 
 def incident_rows(incidents: Sequence[Incident], zone: tzinfo) -> list[list[str]]:
     return [[str(i.id), show_time(i.start, zone), "active" if i.end is None else show_time(i.end, zone),
-             i.feed_id, rules_text(i), i.severity, _short(_number(i.peak_abs_z), 3), str(len(i.events)),
+             i.feed_id, rules_text(i), i.severity, show_abs_z(_number(i.peak_abs_z)), str(len(i.events)),
              _ack_text(i)] for i in incidents]
 
 
