@@ -21,6 +21,7 @@ from leadline.detector.errors import LeadlineError, StoreError
 from leadline.detector.events import AlarmEvent
 
 from ..ports import EventSink, FeedStatusRow, Heartbeat
+from .log_setup import log_fields
 
 logger = logging.getLogger("leadline.service")
 
@@ -111,6 +112,4 @@ class FeedReports:
 
 
 def _fields(message: str, **fields: Any) -> str:
-    from .loop import log_fields
-
     return log_fields(message, **fields)

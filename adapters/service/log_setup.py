@@ -40,7 +40,7 @@ import logging
 import os
 import sys
 from datetime import datetime, timezone
-from typing import TextIO
+from typing import Any, TextIO
 
 from ..sinks.safe_text import safe_text
 
@@ -131,5 +131,15 @@ def configure_logging(level: str = "info", fmt: str = "text", stream: TextIO | N
     return handler
 
 
-__all__ = ["FORMATS", "LEVELS", "JsonLineFormatter", "SafeTextFormatter", "configure_logging",
+__all__ = ["FORMATS", "LEVELS", "JsonLineFormatter", "SafeTextFormatter", "configure_logging", "log_fields",
            "stream_is_journal", "syslog_priority"]
+
+def log_fields(message: str, **fields: Any) -> str:
+    """``message key=value ...``: one structured log line."""
+    parts = [message]
+    for key, value in fields.items():
+        text = f"{value:.4g}" if isinstance(value, float) else str(value)
+        if " " in text or "=" in text:
+            text = '"' + text.replace('"', "'") + '"'
+        parts.append(f"{key}={text}")
+    return " ".join(parts)

@@ -77,6 +77,8 @@ if TYPE_CHECKING:
 from .accepts import AcceptPoller
 from .backoff import Backoff
 from .feed_reports import FeedReports
+from .log_setup import log_fields  # noqa: F401 (re-exported: other modules log through it)
+from .refits import Refits
 from .durability import Durability
 from .refit_pool import refit_pool
 from .reject_summary import RejectSummary, stage_source_rejects
@@ -88,18 +90,8 @@ def _utc_now() -> datetime:
     return datetime.now(timezone.utc)
 
 
-def log_fields(message: str, **fields: Any) -> str:
-    """``message key=value ...``: one structured log line."""
-    parts = [message]
-    for key, value in fields.items():
-        text = f"{value:.4g}" if isinstance(value, float) else str(value)
-        if " " in text or "=" in text:
-            text = '"' + text.replace('"', "'") + '"'
-        parts.append(f"{key}={text}")
-    return " ".join(parts)
 
-
-class Service(FeedReports):
+class Service(FeedReports, Refits):
     """Wires sources, the engine, the store and an optional alarm publisher.
 
     Parameters
@@ -371,68 +363,6 @@ class Service(FeedReports):
         for request in out.refit_requests:
             self._start_fit(request)
 
-    def _start_fit(self, request: Any) -> None:
-        logger.info(log_fields("refit requested", feed=request.feed_id, reason=request.reason,
-                               points=len(request.values)))
-        if self._pool is None:
-            future: Future = Future()
-            try:
-                future.set_result(self.refit(request))
-            except Exception as exc:  # noqa: BLE001 - reported per feed, the service goes on
-                future.set_exception(exc)
-            self._fits[future] = request
-            self._collect_fits(block=True)  # inline: installed before the next reading, as a replay does
-            return
-        else:
-            future = self._pool.submit(self.refit, request)
-        self._fits[future] = request
-        if self.refit_install_delay_slots is not None:
-            self._install_at[future] = (float(request.epoch_s[-1])
-                                        + (self.refit_install_delay_slots + 1) * float(request.interval_s))
-
-    def _install_due(self, feed_id: str, epoch_s: float) -> None:
-        """Install (waiting if needed) the feed's fit whose install time ``epoch_s`` has reached."""
-        for future, request in list(self._fits.items()):
-            if request.feed_id == feed_id and self._install_at.get(future, -float("inf")) <= epoch_s:
-                self._finish_fit(future)
-
-    def _collect_fits(self, block: bool, held: bool = False) -> None:
-        """Install finished fits; with an install delay only when ``block`` or ``held`` (the input ended)."""
-        if self.refit_install_delay_slots is not None and not (block or held):
-            return
-        for future in list(self._fits):
-            if not (block or future.done()):
-                continue
-            self._finish_fit(future)
-
-    def _finish_fit(self, future: Future) -> None:
-        request = self._fits.pop(future)
-        self._install_at.pop(future, None)
-        try:
-            fitted, thresholds = future.result()
-        except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model
-            logger.warning(log_fields("refit failed", feed=request.feed_id, reason=request.reason,
-                                      error=f"{type(exc).__name__}: {exc}"))
-            self._handle(self.engine.refit_failed(request.feed_id, str(exc)))
-            return
-        self._install(request, fitted, thresholds)
-
-    def _install(self, request: Any, fitted: Any, thresholds: dict) -> None:
-        window_start = datetime.fromtimestamp(float(request.epoch_s[0]), tz=timezone.utc)
-        window_end = datetime.fromtimestamp(float(request.epoch_s[-1]), tz=timezone.utc)
-        version = self.store.record_model(request.feed_id, fitted.spec.label, fitted.params, thresholds,
-                                          fitted.summary(), self.clock(), window_start, window_end, request.reason)
-        out = self.engine.install_model(request.feed_id, fitted, version, request.reason, thresholds=thresholds,
-                                        request=request)
-        self.refits_total += 1
-        if self.engine.state_of(request.feed_id) == "watching":
-            # A new model is made durable with the next commit, not only at the next checkpoint timer,
-            # so a crash soon after a fit does not send the feed back to learning.
-            self.store.stage_checkpoint(request.feed_id, self.engine.checkpoint(request.feed_id), version)
-        logger.info(log_fields("model installed", feed=request.feed_id, version=version, model=fitted.spec.label,
-                               reason=request.reason, aicc=fitted.aicc, ljung_box_p=fitted.ljung_box_pvalue,
-                               problems="; ".join(fitted.problems) or "none"))
-        self._handle(out)
 
     def _housekeeping(self) -> None:
         now = time.monotonic()
