@@ -189,7 +189,7 @@ def test_the_report_loads_in_chromium_without_errors_and_fits_the_width(demo_rep
 
         events_live = store.events()
     assert facts["panels"] == len(group_incidents(events_live, max(s.event.start for s in events_live)))
-    assert facts["panels"] >= 10 and facts["noPlot"] == 0
+    assert facts["panels"] >= 5 and facts["noPlot"] == 0  # at least one per planted fault of the demo
     assert all(w > 300 and h > 100 for w, h in facts["plots"]), facts["plots"]
     assert facts["rate"][0] > 300 and facts["rate"][1] > 80
     assert facts["scrollWidth"] <= WIDTH
