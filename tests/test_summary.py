@@ -126,3 +126,17 @@ def test_summary_over_since_and_until(shift_site, capsys):
     assert "THIS WINDOW" in out and "THIS SHIFT" not in out
     assert "(2 h 30 min)" in out.splitlines()[0]
     assert "Floods:" not in out
+
+
+def test_incidents_the_engine_grouped_are_kept_as_grouped():
+    from dataclasses import replace
+
+    # two episodes 40 minutes apart that the engine put in one incident (within its gap), and a
+    # third that overlaps the second but which the engine began a new incident with
+    a = stored(1, T0, rule="noise_burst", end=T0 + timedelta(minutes=20))
+    b = stored(2, T0 + timedelta(hours=1), rule="noise_burst", end=T0 + timedelta(hours=2))
+    c = stored(3, T0 + timedelta(hours=1, minutes=30), rule="spike", end=T0 + timedelta(hours=1, minutes=40))
+    tagged = [replace(s, event=replace(s.event, incident_start=start))
+              for s, start in ((a, T0), (b, T0), (c, T0 + timedelta(hours=1, minutes=30)))]
+    incidents = group_incidents(tagged, T0 + timedelta(hours=12))
+    assert [[s.id for s in i.events] for i in incidents] == [[1, 2], [3]]

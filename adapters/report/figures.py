@@ -267,11 +267,21 @@ def reference_rows(fig: ShiftFigures) -> list[ReferenceRow]:
 
 
 def group_incidents(events: Sequence[StoredEvent], until: datetime) -> list[Incident]:
-    """Episodes of one feed whose spans overlap (an active one runs to ``until``), oldest first."""
+    """The incidents of ``events``, oldest first.
+
+    Events the engine grouped (``incident_start``, :mod:`leadline.detector.incidents`) keep
+    that grouping, so the report counts incidents as ``leadline events`` lists them. Events
+    stored without one (older stores) group as episodes of one feed whose spans overlap
+    (an active one runs to ``until``).
+    """
     by_feed: dict[str, list[StoredEvent]] = {}
+    tagged: dict[tuple[str, datetime], list[StoredEvent]] = {}
     for s in sorted(events, key=lambda s: (s.event.start, s.id)):
-        by_feed.setdefault(s.event.feed_id, []).append(s)
-    incidents: list[Incident] = []
+        if s.event.incident_start is not None:
+            tagged.setdefault((s.event.feed_id, s.event.incident_start), []).append(s)
+        else:
+            by_feed.setdefault(s.event.feed_id, []).append(s)
+    incidents: list[Incident] = [_incident(feed_id, group) for (feed_id, _), group in tagged.items()]
     for feed_id, items in by_feed.items():
         group: list[StoredEvent] = []
         group_end: datetime | None = None
