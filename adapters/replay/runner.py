@@ -31,14 +31,15 @@ from leadline.detector.evidence import EvidenceRecord, EvidenceRecorder
 
 from .history import FeedHistory, readings_of
 
-__all__ = ["ModelRecord", "GroupResult", "replay_group", "single_blas_thread"]
+__all__ = ["ReplayedFit", "GroupResult", "replay_group", "single_blas_thread"]
 
 logger = logging.getLogger("leadline.replay")
 
 
 @dataclass(frozen=True)
-class ModelRecord:
-    """One fit installed during a replay, as :meth:`EventStore.record_model` takes it."""
+class ReplayedFit:
+    """One fit installed during a replay, as :meth:`EventStore.record_model` takes it (its
+    ``local_version`` numbered within the replay, remapped to the store's when written)."""
 
     feed_id: str
     local_version: int
@@ -59,7 +60,7 @@ class GroupResult:
     feeds: list[str]
     readings: int = 0
     events: list[AlarmEvent] = field(default_factory=list)
-    models: list[ModelRecord] = field(default_factory=list)
+    models: list[ReplayedFit] = field(default_factory=list)
     evidence: list[EvidenceRecord] = field(default_factory=list)
     failed_fits: int = 0
 
@@ -101,7 +102,7 @@ class _GroupReplay:
             return
         version = self.versions.get(request.feed_id, 0) + 1
         self.versions[request.feed_id] = version
-        self.result.models.append(ModelRecord(
+        self.result.models.append(ReplayedFit(
             request.feed_id, version, fitted.spec.label, fitted.params, thresholds, fitted.summary(),
             self.clock, _utc(request.epoch_s[0]), _utc(request.epoch_s[-1]), request.reason))
         self.handle(self.engine.install_model(request.feed_id, fitted, version, request.reason,
