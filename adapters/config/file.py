@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import copy
 import os
-import re
 import tomllib
 from dataclasses import dataclass, field
 from datetime import time
@@ -34,7 +33,7 @@ from .values import (
 )
 from .state_dir import default_store_path
 
-from .keys import (DEFAULT_STORE_FILE, _SHIFT_NAME, _SHIFT_TIMES, RESERVED_SHIFT_NAMES, TOP_KEYS, STORE_KEYS, REFIT_KEYS, PUBLISH_KEYS, EVENT_TOPIC_FIELDS)  # noqa: F401 (re-exported)
+from .keys import (_SHIFT_NAME, _SHIFT_TIMES, RESERVED_SHIFT_NAMES, TOP_KEYS, STORE_KEYS, REFIT_KEYS, PUBLISH_KEYS, EVENT_TOPIC_FIELDS)  # noqa: F401 (re-exported)
 
 
 def available_cores() -> int:

@@ -21,7 +21,6 @@ from __future__ import annotations
 import dataclasses
 import logging
 import signal
-import sys
 from typing import TYPE_CHECKING
 
 from leadline.detector.engine import Engine, FeedSettings

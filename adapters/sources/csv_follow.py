@@ -50,19 +50,16 @@ import glob
 import logging
 import os
 import time
-from dataclasses import dataclass
-from datetime import datetime, timezone
-from typing import Callable, Mapping, NamedTuple, Sequence
+from typing import Callable, Mapping, Sequence
 
 from leadline.adapters.ports import RejectSample, SourceOffset
-from leadline.adapters.sources.csv_rows import CsvLayout, RowParser
+from leadline.adapters.sources.csv_rows import CsvLayout
 from leadline.adapters.sources.feed_gate import DEFAULT_MAX_FEEDS, FeedGate
 from leadline.adapters.sources.rejects import RejectDelta, RejectLog
 from leadline.detector.errors import RejectError, SourceError
 from leadline.detector.readings import Reading
 
-from leadline.adapters.sources.csv_tail import (CsvOrigin, FileIdentity, _count_newlines,  # noqa: F401 (re-exported)
-                                             _find_last_newline, _first_line, _Tail)
+from leadline.adapters.sources.csv_tail import CsvOrigin, FileIdentity, _find_last_newline, _Tail
 
 logger = logging.getLogger("leadline.sources.csv")
 

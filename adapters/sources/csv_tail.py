@@ -11,11 +11,11 @@ import logging
 import os
 from dataclasses import dataclass
 from datetime import datetime, timezone
-from typing import TYPE_CHECKING, Callable, Mapping, NamedTuple, Sequence
+from typing import TYPE_CHECKING, NamedTuple
 
-from leadline.adapters.ports import RejectSample, SourceOffset
-from leadline.adapters.sources.csv_rows import CsvLayout, RowParser
-from leadline.detector.errors import RejectError, SourceError
+from leadline.adapters.ports import SourceOffset
+from leadline.adapters.sources.csv_rows import RowParser
+from leadline.detector.errors import RejectError
 from leadline.detector.readings import Reading
 
 if TYPE_CHECKING:

@@ -65,8 +65,7 @@ import itertools
 import logging
 import threading
 import time
-from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Iterable, Mapping, NamedTuple, Sequence
 
