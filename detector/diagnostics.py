@@ -45,12 +45,12 @@ in statsmodels' ``acorr_ljungbox``.
 from __future__ import annotations
 
 import math
-from collections import deque
 
 import numpy as np
 from scipy.stats import chi2, norm
 
 from .innovation import Innovation
+from .ring import RingBuffer
 
 #: Absorbed innovations in the rolling diagnostics window.
 DIAGNOSTICS_WINDOW = 240
@@ -107,7 +107,7 @@ class InnovationDiagnostics:
     """Rolling checks of a watched feed's innovations (module Notes)."""
 
     def __init__(self) -> None:
-        self.z: deque[float] = deque(maxlen=DIAGNOSTICS_WINDOW)
+        self.z = RingBuffer(DIAGNOSTICS_WINDOW, dtype=np.float32)  # z in (-4, 4): 4 bytes each is plenty
         self.since_check = 0
         self.last: dict[str, float] | None = None
         self._expected = clipped_square_mean(DIAGNOSTICS_CLIP_ABS_Z)
@@ -129,7 +129,7 @@ class InnovationDiagnostics:
     def check(self) -> str | None:
         """Judge the window now; a one-line reason when the fit has degraded, else None."""
         self.since_check = 0
-        z = np.fromiter(self.z, dtype=float)
+        z = self.z.to_array()
         ratio = float(np.mean(z * z)) / self._expected
         p = ljung_box_pvalue(z, LJUNG_BOX_LAG)
         self.last = {"variance_ratio": float(ratio), "ljung_box_p": float(p)}

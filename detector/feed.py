@@ -117,7 +117,7 @@ class FeedLifecycle:
         self.next_learning_check = settings.min_train_points
         self._replaying_raw = False
         self.next_slot = 0
-        self.history = RingBuffer(settings.refit_window_points)
+        self.history = RingBuffer(settings.refit_window_points, dtype=np.float32)
         self.pending: _Pending | None = None
         self.monitor: FeedMonitor | None = None
         self.thresholds: AlarmLimits | None = None
@@ -429,7 +429,7 @@ class FeedLifecycle:
         if p.kind == "initial":
             self.monitor = FeedMonitor(self.feed_id, stream, config, last_seen=p.last_seen,
                                        recent_readings=p.request.values)
-            self.history = RingBuffer(self.settings.refit_window_points, p.request.values)
+            self.history = RingBuffer(self.settings.refit_window_points, p.request.values, dtype=np.float32)
             self.window, self.window_valid = [], 0
             self.state = "watching"
             out.state_changes.append(StateChange(

@@ -16,9 +16,14 @@ with a note in their detail. A feed that is still learning has no
 checkpoint; after a restart it learns again.
 
 Layout, like the stream's: 8-byte magic ``LLFEED01``, uint16 format version,
-uint32 header length, a UTF-8 JSON header, then an ``.npz`` archive of the
-arrays, loaded with ``allow_pickle=False``. Nothing is unpickled: loading
-a checkpoint cannot run code.
+uint32 header length, then (format 2) one zlib stream holding the UTF-8
+JSON header and the arrays' raw bytes, their names, number types and shapes
+listed in the header (:func:`pack`); format 1 had a plain JSON header and an
+``.npz`` archive, loaded with ``allow_pickle=False``. Nothing is unpickled:
+loading a checkpoint cannot run code. Format 2 also keeps the refit window as float32 departures from
+``history_reference`` (:mod:`.ring`) and the rules' configuration as its
+SHA-256 (``monitor_fingerprint_sha256``) rather than its text; format 1
+checkpoints are still read.
 
 The rules' state
 ----------------
@@ -46,10 +51,12 @@ without it restores with no incident open, so the next event starts one.
 
 from __future__ import annotations
 
+import hashlib
 import io
 import json
 import struct
 import zipfile
+import zlib
 from collections import deque
 from collections.abc import Callable
 from datetime import datetime, timezone
@@ -63,7 +70,7 @@ from .errors import ConfigError, DataError, StateFormatError
 from .events import AlarmEvent
 from .grid import GridCounts, GridCursor
 from .innovation import Innovation
-from .refit import RingBuffer
+from .ring import RingBuffer
 from .rules.monitor import FeedMonitor, MonitorConfig
 from .rules.limits import AlarmLimits
 from .rules.thresholds import sigma_thresholds
@@ -76,20 +83,41 @@ from .rules.level_shift import LevelShiftEstimate
 from .rules.lifecycle import Assessment, LifecycleConfig
 
 _MAGIC = b"LLFEED01"
-#: Version of the byte format written by :func:`pack`.
-FEED_STATE_FORMAT_VERSION = 1
+#: Version of the byte format written by :func:`pack`. Version 2 keeps the refit window as float32
+#: departures from ``history_reference`` (:mod:`.ring`); version 1 kept float64 values.
+FEED_STATE_FORMAT_VERSION = 2
+#: The versions :func:`unpack` reads.
+READABLE_FORMAT_VERSIONS = (1, 2)
 
 #: Lists of numeric rows at least this long go to the array archive.
 TABLE_MIN_ROWS = 16
 
 
 # --------------------------------------------------------------- byte format
+#: The array types a checkpoint may hold (plain numbers only: nothing to unpickle).
+_ARRAY_DTYPES = frozenset({"<f8", "<f4", "|u1", "<i8", "|b1"})
+
+
 def pack(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> bytes:
-    """Header (JSON-serialisable) and arrays to checkpoint bytes."""
-    header_bytes = json.dumps(header, sort_keys=True).encode("utf-8")
-    buffer = io.BytesIO()
-    np.savez(buffer, **arrays)
-    return _MAGIC + struct.pack("<HI", FEED_STATE_FORMAT_VERSION, len(header_bytes)) + header_bytes + buffer.getvalue()
+    """Header (JSON-serialisable) and arrays to checkpoint bytes (format 2).
+
+    After the magic, the version and the JSON length comes one zlib stream
+    (level 1): the JSON header, whose ``"$arrays"`` lists each array's
+    name, dtype and shape, then the arrays' raw little-endian bytes in that
+    order.
+    """
+    layout, chunks = [], []
+    for name in sorted(arrays):
+        array = np.ascontiguousarray(arrays[name])
+        if array.dtype.str not in _ARRAY_DTYPES:
+            array = array.astype(array.dtype.newbyteorder("<"))
+        if array.dtype.str not in _ARRAY_DTYPES:
+            raise DataError(f"checkpoint array {name!r} has type {array.dtype}, not a plain number type")
+        layout.append([name, array.dtype.str, list(array.shape)])
+        chunks.append(array.tobytes())
+    header_bytes = json.dumps({**header, "$arrays": layout}, sort_keys=True).encode("utf-8")
+    body = zlib.compress(header_bytes + b"".join(chunks), 1)
+    return _MAGIC + struct.pack("<HI", FEED_STATE_FORMAT_VERSION, len(header_bytes)) + body
 
 
 def unpack(data: bytes) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
@@ -107,18 +135,42 @@ def unpack(data: bytes) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     if len(data) < len(_MAGIC) + 6 or not data.startswith(_MAGIC):
         raise StateFormatError("not a leadline feed checkpoint (bad magic bytes)")
     version, header_len = struct.unpack_from("<HI", data, len(_MAGIC))
-    if version != FEED_STATE_FORMAT_VERSION:
+    if version not in READABLE_FORMAT_VERSIONS:
         raise StateFormatError(f"feed checkpoint format version {version} is not supported "
-                               f"(this build reads {FEED_STATE_FORMAT_VERSION})")
+                               f"(this build reads {', '.join(map(str, READABLE_FORMAT_VERSIONS))})")
     start = len(_MAGIC) + 6
     try:
-        header = json.loads(data[start:start + header_len].decode("utf-8"))
-        with np.load(io.BytesIO(data[start + header_len:]), allow_pickle=False) as archive:
-            arrays = {name: archive[name] for name in archive.files}
-    except (ValueError, KeyError, UnicodeDecodeError, OSError, zipfile.BadZipFile, EOFError) as exc:
+        if version == 1:  # a JSON header, then an .npz archive
+            header = json.loads(data[start:start + header_len].decode("utf-8"))
+            with np.load(io.BytesIO(data[start + header_len:]), allow_pickle=False) as archive:
+                arrays = {name: archive[name] for name in archive.files}
+        else:
+            header, arrays = _read_body(zlib.decompress(data[start:]), header_len)
+    except (ValueError, KeyError, TypeError, UnicodeDecodeError, OSError, zipfile.BadZipFile, EOFError,
+            zlib.error) as exc:
         raise StateFormatError(f"feed checkpoint is corrupt: {exc}") from exc
     if not isinstance(header, dict):
         raise StateFormatError("feed checkpoint is corrupt: the header is not a JSON object")
+    return header, arrays
+
+
+def _read_body(body: bytes, header_len: int) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    header = json.loads(body[:header_len].decode("utf-8"))
+    if not isinstance(header, dict) or not isinstance(header.get("$arrays"), list):
+        raise ValueError("the header is not a JSON object with its array layout")
+    arrays, offset = {}, header_len
+    for name, dtype, shape in header.pop("$arrays"):
+        if dtype not in _ARRAY_DTYPES:
+            raise ValueError(f"array {name!r} has type {dtype!r}, not a plain number type")
+        dt = np.dtype(dtype)
+        count = int(np.prod(shape, dtype=np.int64))
+        end = offset + count * dt.itemsize
+        if end > len(body):
+            raise ValueError(f"array {name!r} runs past the end of the checkpoint")
+        arrays[name] = np.frombuffer(body, dtype=dt, count=count, offset=offset).reshape(shape).copy()
+        offset = end
+    if offset != len(body):
+        raise ValueError(f"{len(body) - offset} bytes after the last array")
     return header, arrays
 
 
@@ -285,6 +337,17 @@ def _fingerprint(config: MonitorConfig) -> str:
     return config.fingerprint()
 
 
+def _fingerprint_digest(config: MonitorConfig) -> str:
+    """SHA-256 of :func:`_fingerprint`, what a checkpoint of format 2 keeps (64 bytes, not the text)."""
+    return hashlib.sha256(_fingerprint(config).encode("utf-8")).hexdigest()
+
+
+def _same_rules(config: MonitorConfig, header: dict[str, Any]) -> bool:
+    if "monitor_fingerprint_sha256" in header:
+        return _fingerprint_digest(config) == header["monitor_fingerprint_sha256"]
+    return _fingerprint(config) == header["monitor_fingerprint"]  # format 1 kept the text
+
+
 def feed_checkpoint(feed: Any) -> bytes:
     """A watched feed's whole state as checkpoint bytes (see the section above).
 
@@ -323,7 +386,7 @@ def feed_checkpoint(feed: Any) -> bytes:
         "counter": None if feed.counter is None else feed.counter.to_dict(),
         "thresholds": feed.thresholds.to_json(),
         "thresholds_config": feed.thresholds_config,
-        "monitor_fingerprint": _fingerprint(feed.monitor.config),
+        "monitor_fingerprint_sha256": _fingerprint_digest(feed.monitor.config),
         "monitor": monitor_state,
         "diagnostics": {"since_check": feed.diagnostics.since_check, "last": feed.diagnostics.last},
         "incidents": feed.incidents.state_dict(),
@@ -336,8 +399,10 @@ def feed_checkpoint(feed: Any) -> bytes:
                   "meter_resets": feed.meter_resets},
     }
     arrays["stream"] = np.frombuffer(feed.monitor.stream.to_bytes(), dtype=np.uint8)
-    arrays["history"] = feed.history.to_array()
-    arrays["diagnostics_z"] = np.array(feed.diagnostics.z, dtype=float)
+    arrays["history"] = feed.history.stored()  # float32 departures from history_reference
+    header["history_reference"] = feed.history.reference
+    arrays["diagnostics_z"] = feed.diagnostics.z.stored()  # float32 departures from z_reference
+    header["diagnostics"]["z_reference"] = feed.diagnostics.z.reference
     return pack(header, arrays)
 
 
@@ -436,7 +501,7 @@ def _feed_from_parts(new_feed: Callable[[str, Any], Any], feed_id: str, settings
     feed.meter_resets = int(stats["meter_resets"])
     config = feed.monitor_config(thresholds)
     monitor = FeedMonitor(feed_id, stream, config, last_seen=feed.last_seen)
-    if _fingerprint(config) == header["monitor_fingerprint"]:
+    if _same_rules(config, header):
         restore_monitor(monitor, header["monitor"], arrays)
         resumed = "rule states restored"
     else:
@@ -447,8 +512,18 @@ def _feed_from_parts(new_feed: Callable[[str, Any], Any], feed_id: str, settings
                                                    "settings changed"))
         resumed = "rule settings changed, rule states restarted"
     feed.monitor = monitor
-    feed.history = RingBuffer(settings.refit_window_points, arrays["history"])
-    feed.diagnostics.z.extend(arrays["diagnostics_z"].tolist())
+    if "history_reference" in header:
+        feed.history = RingBuffer.from_stored(settings.refit_window_points, arrays["history"],
+                                              header["history_reference"], np.float32)
+    else:  # format 1 kept the refit window as float64 values
+        feed.history = RingBuffer(settings.refit_window_points, arrays["history"], dtype=np.float32)
+    saved_diagnostics = header["diagnostics"]
+    if "z_reference" in saved_diagnostics:
+        z = feed.diagnostics.z
+        feed.diagnostics.z = RingBuffer.from_stored(z.capacity, arrays["diagnostics_z"],
+                                                    saved_diagnostics["z_reference"], z.dtype)
+    else:  # format 1 kept the values
+        feed.diagnostics.z.extend(arrays["diagnostics_z"])
     feed.diagnostics.since_check = int(header["diagnostics"]["since_check"])
     feed.diagnostics.last = header["diagnostics"]["last"]
     feed.last_diag_refit_slot = header["last_diag_refit_slot"]

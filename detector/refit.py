@@ -6,7 +6,8 @@ inline) and hands the result back with
 :meth:`~leadline.detector.engine.Engine.install_model`.
 :func:`run_refit_with_thresholds` also sets the alarm limits in the worker
 (:func:`thresholds_for`). The rolling refit window of a watched feed is a
-:class:`RingBuffer` of its model values.
+:class:`~.ring.RingBuffer` of its model values, stored as float32 departures from a
+reference value (4 bytes a slot).
 
 Refits while watching
 ---------------------
@@ -50,6 +51,7 @@ import numpy as np
 
 from .durations import WEEK_S
 from .fitting import FittedModel, fit
+from .ring import RingBuffer  # noqa: F401  (the refit window's ring, re-exported)
 from .rules import AlarmLimits, budget_thresholds, sigma_thresholds
 from .rules.thresholds import with_training_readings
 from .rules.drift import complete_section, drift_options
@@ -165,39 +167,3 @@ def run_refit_with_thresholds(request: RefitRequest) -> tuple[FittedModel, dict[
     """
     fitted = run_refit(request)
     return fitted, thresholds_for(fitted, request).to_json()
-
-
-# ------------------------------------------------------------ refit window
-class RingBuffer:
-    """The last ``capacity`` floats, in a fixed numpy array (8 bytes a value)."""
-
-    def __init__(self, capacity: int, values: Any = ()) -> None:
-        self._data = np.full(int(capacity), np.nan)
-        first = np.asarray(values, dtype=float).ravel()[-self._data.size:]
-        self._data[:first.size] = first
-        self._start = 0
-        self._len = int(first.size)
-
-    def __len__(self) -> int:
-        return self._len
-
-    def append(self, value: float) -> None:
-        cap = self._data.size
-        if self._len < cap:
-            self._data[(self._start + self._len) % cap] = value
-            self._len += 1
-        else:
-            self._data[self._start] = value
-            self._start = (self._start + 1) % cap
-
-    def to_array(self) -> np.ndarray:
-        """The values, oldest first (a copy)."""
-        end = self._start + self._len
-        if end <= self._data.size:
-            return self._data[self._start:end].copy()
-        return np.concatenate((self._data[self._start:], self._data[:end - self._data.size]))
-
-    def add(self, constant: float) -> None:
-        """Add ``constant`` to every value (NaN stays NaN)."""
-        self._data += constant
-

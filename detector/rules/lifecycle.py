@@ -30,7 +30,6 @@ design: deadband, on-delay and off-delay) [from memory; common practice].
 from __future__ import annotations
 
 import math
-from collections import deque
 from dataclasses import dataclass, replace
 from datetime import datetime
 from typing import Any
@@ -132,7 +131,7 @@ class AlarmLifecycle:
         self.rule = rule
         self.config = config or LifecycleConfig()
         self.parameters = {**(parameters or {}), **self.config.to_dict()}
-        self._window: deque[bool] = deque(maxlen=self.config.on_delay_n)
+        self._window = _OnDelayWindow(self.config.on_delay_n)
         self._event: AlarmEvent | None = None
         self._clear_count = 0
 
@@ -141,7 +140,7 @@ class AlarmLifecycle:
     def state(self) -> str:
         """``normal``, ``pending``, ``active`` or ``clearing``."""
         if self._event is None:
-            return PENDING if any(self._window) else NORMAL
+            return PENDING if self._window.hits else NORMAL
         return CLEARING if self._clear_count > 0 else ACTIVE
 
     @property
@@ -163,7 +162,7 @@ class AlarmLifecycle:
             "severity": ev.severity if ev else None,
             "start": ev.start.isoformat() if ev else None,
             "peak_abs_z": (ev.peak_abs_z if ev and math.isfinite(ev.peak_abs_z) else None),
-            "on_delay_hits": sum(self._window),
+            "on_delay_hits": self._window.hits,
             "off_delay_count": self._clear_count,
         }
 
@@ -172,13 +171,13 @@ class AlarmLifecycle:
 
     def state_dict(self) -> dict[str, Any]:
         """The running state (on-delay window, open episode, off-delay count) as plain JSON values."""
-        return {"v": self.STATE_VERSION, "on_delay_window": list(self._window),
+        return {"v": self.STATE_VERSION, "on_delay_window": self._window.to_list(),
                 "open_episode": event_to_json(self._event), "off_delay_count": self._clear_count}
 
     def load_state(self, state: Any) -> None:
         """Take back a :meth:`state_dict` of a lifecycle with the same settings."""
         state = check_state(state, f"lifecycle of rule {self.rule!r}", self.STATE_VERSION)
-        self._window = deque((bool(x) for x in state["on_delay_window"]), maxlen=self.config.on_delay_n)
+        self._window = _OnDelayWindow(self.config.on_delay_n, state["on_delay_window"])
         self._event = event_from_json(state["open_episode"])
         self._clear_count = int(state["off_delay_count"])
 
@@ -210,7 +209,7 @@ class AlarmLifecycle:
             raise RuleError(f"rule {self.rule!r} on {self.feed_id!r}: step time must be timezone-aware (UTC)")
         if self._event is None:
             self._window.append(assessment.severity is not None)
-            if assessment.severity is not None and sum(self._window) >= self.config.on_delay_k:
+            if assessment.severity is not None and self._window.hits >= self.config.on_delay_k:
                 return [self._open(assessment, when, innovation, model_version)]
             return []
         self._track(assessment)
@@ -297,3 +296,36 @@ class AlarmLifecycle:
             changes["detail"] = f"{ev.detail}; escalated: {assessment.detail}" if ev.detail else assessment.detail
         if changes:
             self._event = replace(ev, **changes)
+
+
+class _OnDelayWindow:
+    """The last ``n`` assessments (abnormal or not) as the bits of one integer, newest in bit 0.
+
+    The k-of-n on-delay only needs how many of the last n were abnormal;
+    an int holds them in a few dozen bytes where a deque takes over 600.
+    """
+
+    __slots__ = ("_n", "_bits", "_count")
+
+    def __init__(self, n: int, flags: Any = ()) -> None:
+        self._n = int(n)
+        self._bits = 0
+        self._count = 0
+        for flag in list(flags)[-self._n:]:
+            self.append(bool(flag))
+
+    def append(self, flag: bool) -> None:
+        self._bits = ((self._bits << 1) | int(flag)) & ((1 << self._n) - 1)
+        self._count = min(self._count + 1, self._n)
+
+    @property
+    def hits(self) -> int:
+        return self._bits.bit_count()
+
+    def clear(self) -> None:
+        self._bits = 0
+        self._count = 0
+
+    def to_list(self) -> list[bool]:
+        """The flags kept, oldest first."""
+        return [bool((self._bits >> (self._count - 1 - i)) & 1) for i in range(self._count)]

@@ -66,7 +66,6 @@ are advisory.
 from __future__ import annotations
 
 import math
-from collections import deque
 from dataclasses import replace
 from datetime import datetime
 from typing import Any
@@ -79,19 +78,20 @@ from ..innovation import Innovation
 from . import registry
 from .contract import BuildContext, check_state, innovation_from_json, innovation_to_json
 from .level_condition import LevelCondition
-from .level_shift import estimate_level_shift
+from .level_shift import MAX_RUN_STEPS, estimate_level_shift
 from .lifecycle import AlarmLifecycle
 from .limits import AlarmLimits
 from .monitor_config import MonitorConfig, StepResult
 from .monitor_episodes import LevelEpisodes
+from .step_history import StepHistory
 
 
 __all__ = ["FeedMonitor", "MonitorConfig", "StepResult", "INNOVATION_RULES", "HISTORY_STEPS"]
 
 #: The innovation rules, in the order they are assessed.
 INNOVATION_RULES = registry.rule_names("innovation")
-#: Steps of innovations kept for estimating a confirmed level shift.
-HISTORY_STEPS = 1024
+#: Steps of innovations kept for estimating a confirmed level shift: all the estimate reads.
+HISTORY_STEPS = MAX_RUN_STEPS
 
 
 class FeedMonitor(LevelEpisodes):
@@ -167,7 +167,7 @@ class FeedMonitor(LevelEpisodes):
         self.reanchors = 0
         self.last_innovation: Innovation | None = None
         # (z, std, absorbed) of recent steps, for the re-anchoring estimate
-        self._history: deque[tuple[float, float, bool]] = deque(maxlen=HISTORY_STEPS)
+        self._history = StepHistory(HISTORY_STEPS)
         self._settle: list[tuple[float, float, bool]] | None = None
         self._settle_prior_se = 0.0
         self._steps = 0  # stream steps taken, the index of the history's last entry
@@ -222,7 +222,7 @@ class FeedMonitor(LevelEpisodes):
                 onset = replace(self.stream.peek(math.nan), value=value, timestamp=timestamp)
                 events += life.step(verdict, timestamp, onset, version)
                 self.last_innovation = self.stream.update(math.nan)
-                self._history.append((math.nan, self.last_innovation.std, False))
+                self._history.append(math.nan, self.last_innovation.std, False)
                 self._steps += 1
                 for name, rule in self.rules.items():
                     if name != "range":
@@ -260,7 +260,7 @@ class FeedMonitor(LevelEpisodes):
         # the level-shift estimate models what the filter itself did, so the
         # history keeps the stream's own innovation even under the shock view
         record = (inn.z, inn.std, inn.absorbed)
-        self._history.append(record)
+        self._history.append(*record)
         self._steps += 1
         if self._settle is not None:
             self._settle.append(record)
@@ -379,7 +379,7 @@ class FeedMonitor(LevelEpisodes):
             "shock_candidate": None if self._shock_candidate is None else list(self._shock_candidate),
             "last_absorbed": self._last_absorbed,
             "last_innovation": innovation_to_json(self.last_innovation),
-            "history": [list(row) for row in self._history],
+            "history": [list(row) for row in self._history.rows()],
             "settle": None if self._settle is None else [list(row) for row in self._settle],
             "settle_prior_se": self._settle_prior_se,
             "unconfirmed": None if self._unconfirmed is None else list(self._unconfirmed),
@@ -417,7 +417,7 @@ class FeedMonitor(LevelEpisodes):
         self._shock_candidate = None if candidate is None else (float(candidate[0]), float(candidate[1]))
         self._last_absorbed = bool(state["last_absorbed"])
         self.last_innovation = innovation_from_json(state["last_innovation"])
-        self._history = deque((_history_row(row) for row in state["history"]), maxlen=HISTORY_STEPS)
+        self._history = StepHistory(HISTORY_STEPS, state["history"])
         settle = state["settle"]
         self._settle = None if settle is None else [_history_row(row) for row in settle]
         self._settle_prior_se = float(state["settle_prior_se"])
@@ -500,7 +500,7 @@ class FeedMonitor(LevelEpisodes):
             self._unconfirmed = (direction, first, count)
             return
         self._unconfirmed = None
-        history = list(self._history)
+        history = self._history.rows()
         run = history[max(0, len(history) - (self._steps - first + 1)):]
         estimate = estimate_level_shift(self.stream.system, self.stream.cov, run)
         if estimate is not None:

@@ -50,7 +50,7 @@ class LevelEpisodes:
         # the episode's readings and the CUSUM run before them; the estimate searches for the step
         steps = min(self._level_age + 2 * self.level.current_readings, self._steps - self._last_reanchor_step)
         if self.config.reanchor and steps > 0:
-            estimate = estimate_level_shift(self.stream.system, self.stream.cov, list(self._history)[-steps:])
+            estimate = estimate_level_shift(self.stream.system, self.stream.cov, self._history.rows()[-steps:])
             if estimate is not None and abs(estimate.size) > 3.0 * estimate.std_error:
                 self._reanchor(estimate.delta, estimate, when, "accepted")
                 self._settle = [] if self.config.settle_steps > 0 else None
@@ -160,7 +160,7 @@ class LevelEpisodes:
             # the return began about a median's length before the condition saw it
             began = self._return_step - self.level.current_readings
             if self._last_reanchor_step < began:  # the CUSUM has not followed the return itself
-                history = list(self._history)[-(self._steps - began):]
+                history = self._history.rows()[-(self._steps - began):]
                 estimate = estimate_level_shift(self.stream.system, self.stream.cov, history)
                 if estimate is not None and abs(estimate.size) > 3.0 * estimate.std_error:
                     self._reanchor(estimate.delta, estimate, when, "returned")

@@ -1,0 +1,83 @@
+"""The recent steps of the stream, kept compactly for the re-anchoring estimate.
+
+:func:`~.level_shift.estimate_level_shift` reads at most
+:data:`~.level_shift.MAX_RUN_STEPS` steps of a run, the latest ones, so the
+monitor keeps exactly that many: (z_t, sqrt(F_t), absorbed) of each step,
+in three fixed numpy arrays used as a ring (17 bytes a step, about 2 KiB in
+all), not as Python tuples (about 110 bytes a step).
+
+The values are float64, as the stream produced them: the rows read back are
+the same floats that went in, so the estimate is unchanged by the storage.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from typing import Any
+
+import numpy as np
+
+from .level_shift import MAX_RUN_STEPS
+
+__all__ = ["StepHistory"]
+
+
+class StepHistory:
+    """The last ``capacity`` steps (z, std, absorbed), oldest first when read.
+
+    Parameters
+    ----------
+    capacity : int
+        Steps kept (default :data:`~.level_shift.MAX_RUN_STEPS`, all the
+        estimate can use).
+    rows : iterable of (z, std, absorbed), optional
+        Steps to start with, oldest first; only the last ``capacity`` are kept.
+    """
+
+    __slots__ = ("_z", "_std", "_absorbed", "_next", "_len")
+
+    def __init__(self, capacity: int = MAX_RUN_STEPS, rows: Iterable[Any] = ()) -> None:
+        capacity = int(capacity)
+        if capacity < 1:
+            raise ValueError(f"StepHistory capacity must be >= 1, got {capacity}")
+        self._z = np.full(capacity, np.nan)
+        self._std = np.full(capacity, np.nan)
+        self._absorbed = np.zeros(capacity, dtype=bool)
+        self._next = 0
+        self._len = 0
+        for row in rows:
+            self.append(*_row(row))
+
+    @property
+    def capacity(self) -> int:
+        return self._z.size
+
+    def __len__(self) -> int:
+        return self._len
+
+    def append(self, z: float, std: float, absorbed: bool) -> None:
+        """Keep one step, dropping the oldest when full."""
+        i = self._next
+        self._z[i] = z
+        self._std[i] = std
+        self._absorbed[i] = absorbed
+        self._next = (i + 1) % self._z.size
+        if self._len < self._z.size:
+            self._len += 1
+
+    def rows(self) -> list[tuple[float, float, bool]]:
+        """The steps kept, oldest first, as ``(z, std, absorbed)`` tuples of Python floats and bools."""
+        cap = self._z.size
+        start = (self._next - self._len) % cap
+        order = (np.arange(self._len) + start) % cap
+        return list(zip(self._z[order].tolist(), self._std[order].tolist(), self._absorbed[order].tolist()))
+
+    def __iter__(self):
+        return iter(self.rows())
+
+
+def _row(row: Any) -> tuple[float, float, bool]:
+    """One saved row (JSON nulls for NaN) as (z, std, absorbed)."""
+    z, std, absorbed = row
+    return (math.nan if z is None else float(z), math.nan if std is None else float(std), bool(absorbed))
