@@ -47,6 +47,7 @@ The engineering range applies to the deltas.
 from __future__ import annotations
 
 import math
+from array import array
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta, timezone
 from typing import Any
@@ -108,10 +109,13 @@ class FeedLifecycle:
         self.cursor: GridCursor | None = None
         self.counter = (CounterDeltas(settings.register_size, settings.reset_drop_fraction)
                         if settings.counter else None)
-        self.raw: list[tuple[float, float, datetime]] = []
+        # the learning readings before the grid exists, as two float arrays (16 bytes a reading);
+        # a reading's time is its epoch again when it is placed (the same instant, in UTC)
+        self.raw_epochs = array("d")
+        self.raw_values = array("d")
         self.raw_real = 0
         self.raw_span = (math.inf, -math.inf)
-        self.window: list[float] = []
+        self.window = array("d")  # the learning window on the grid, NaN for a missing slot
         self.window_start = 0
         self.window_valid = 0
         self.next_learning_check = settings.min_train_points
@@ -205,7 +209,8 @@ class FeedLifecycle:
 
     def _learn_raw(self, epoch: float, value: float, ts: datetime, out: EngineOutput) -> None:
         """Before the grid exists: keep the reading; put the window on a grid once it is full."""
-        self.raw.append((epoch, value, ts))
+        self.raw_epochs.append(epoch)
+        self.raw_values.append(value)
         self.last_time, self.last_value = ts, value
         if math.isfinite(value):
             self.raw_real += 1
@@ -215,18 +220,20 @@ class FeedLifecycle:
             return
         if not (self.raw_real >= s.train_points or self.raw_span[1] - self.raw_span[0] >= s.train_span_s):
             return
-        epochs = np.fromiter((r[0] for r in self.raw), dtype=float, count=len(self.raw))
+        epochs = np.frombuffer(self.raw_epochs, dtype=float).copy()
         distinct = np.unique(epochs)
         if distinct.size < 2:
             self.next_learning_check = self.raw_real + 1
             return
         interval = s.interval_s if s.interval_s is not None else infer_interval_s(distinct)
         self.cursor = GridCursor(_grid_origin(epochs, interval), interval, s.grid_tolerance)
-        raw, self.raw = self.raw, []
+        values = self.raw_values
+        self.raw_epochs, self.raw_values = array("d"), array("d")
         self._replaying_raw = True
         try:
-            for i in sorted(range(len(raw)), key=lambda k: raw[k][0]):
-                self._place(*raw[i], out)
+            times = epochs.tolist()
+            for i in np.argsort(epochs, kind="stable").tolist():
+                self._place(times[i], values[i], _utc(times[i]), out)
         finally:
             self._replaying_raw = False
         self.last_time, self.last_value = ts, value  # the latest arrival, not the latest in time
@@ -430,7 +437,7 @@ class FeedLifecycle:
             self.monitor = FeedMonitor(self.feed_id, stream, config, last_seen=p.last_seen,
                                        recent_readings=p.request.values)
             self.history = RingBuffer(self.settings.refit_window_points, p.request.values, dtype=np.float32)
-            self.window, self.window_valid = [], 0
+            self.window, self.window_valid = array("d"), 0
             self.state = "watching"
             out.state_changes.append(StateChange(
                 self.feed_id, "fitting", "watching", self.at_last_slot(),
