@@ -1,4 +1,4 @@
-"""The journal of accepted readings and its snapshots, on a real SQLite store."""
+"""The journal of accepted readings and its snapshots, on real SQLite and PostgreSQL stores."""
 
 from __future__ import annotations
 
@@ -6,13 +6,15 @@ import math
 
 import pytest
 
+from store_helpers import store_url  # noqa: F401 - fixture
+
 from leadline.adapters.store import open_store
 from leadline.detector.errors import StoreError
 
 
 @pytest.fixture()
-def url(tmp_path):
-    return f"sqlite:///{tmp_path / 'journal.db'}"
+def url(store_url):  # noqa: F811 - each test runs on SQLite and on PostgreSQL
+    return store_url
 
 
 def test_rows_commit_with_the_flush_and_nothing_before_it(url):

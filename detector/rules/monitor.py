@@ -74,7 +74,7 @@ import numpy as np
 
 from ..errors import DataError, RuleError, StateFormatError
 from ..events import AlarmEvent
-from ..innovation import Innovation
+from ..innovation import Innovation, stamped
 from . import registry
 from .contract import BuildContext, check_state, innovation_from_json, innovation_to_json
 from .level_condition import LevelCondition
@@ -267,7 +267,7 @@ class FeedMonitor(LevelEpisodes):
         if shock is not None:
             inn = shock
             self.shocks += 1
-        inn = replace(inn, timestamp=timestamp)
+        inn = stamped(inn, timestamp)
         self.last_innovation = inn
 
         burst_before = self.lifecycles["noise_burst"].is_active if "noise_burst" in self.lifecycles else False
