@@ -52,7 +52,6 @@ interval = "15min"
 train_points = {train_points}
 train_span = "14d"
 threshold_mode = "budget"
-false_alarms_per_week = 1.0
 model = {{ order = [1, 0, 0] }}
 
 [[feeds.override]]
