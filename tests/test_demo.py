@@ -95,3 +95,18 @@ def test_the_readme_review_examples_point_at_the_demo_data():
     assert first.isoformat() == "2026-10-19"
     globs = [g for line in commands for g in re.findall(r"'([^']*\*[^']*)'", line)]
     assert globs and all(any(fnmatchcase(f, g) for f in scenario.feeds) for g in globs)
+
+
+def test_an_incident_stays_active_exactly_while_its_fault_runs(demo):
+    # a leak or a drift that runs to the end of the data holds its alarm; a fault that ended (the
+    # noise burst, the stuck sensor once freed, the wild reading) leaves nothing active behind
+    _, _, result = demo
+    scenario = result["scenario"]
+    total = len(next(iter(scenario.feeds.values())))
+    for index, hits in result["by_fault"].items():
+        fault = scenario.faults[index]
+        active = [e.event.rule for e in hits if e.event.end is None]
+        if fault.end_slot < total:
+            assert active == [], f"{fault.kind} on {fault.feed_id} ended, yet {active} still active"
+        else:
+            assert active, f"{fault.kind} on {fault.feed_id} runs to the end, yet no alarm holds"

@@ -36,7 +36,8 @@ For each reading :meth:`FeedMonitor.process` does, in order:
 
 6. **The level condition** (:class:`~.level_condition.LevelCondition`):
    every finite in-range reading, less the model's calendar part x_t' beta,
-   is kept. When a CUSUM episode opens, the level before its run is frozen;
+   is kept, except while a flatline episode is open (a frozen transmitter's
+   readings are not the process, so they never become the level before). When a CUSUM episode opens, the level before its run is frozen;
    while the readings stay away from it the episode stays open (the CUSUM's
    verdict becomes the deadband), and once the departure was established
    and the readings have returned, it clears after the off-delay whatever
@@ -230,7 +231,10 @@ class FeedMonitor(LevelEpisodes):
                 return events
             events += life.step(verdict, timestamp, None, version)
 
-        if math.isfinite(value):
+        flat_life = self.lifecycles.get("flatline")
+        if math.isfinite(value) and not (flat_life is not None and flat_life.is_active):
+            # a frozen transmitter's readings are not the process: the level before a later episode
+            # (the return of the true readings, say) comes from the readings before it froze
             self.level.observe(value - self._calendar_part())
             if self.level.tracking:
                 self._level_age += 1
