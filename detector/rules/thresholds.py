@@ -50,7 +50,11 @@ once whatever its severity, so the warning level carries the budget.
 1 / p_r for the winsorized chart by the Markov chain of :mod:`.arl`; h_E is
 found by running the chart on bootstrap resamples of the training
 residuals (extreme ones screened out as the live rule does) until its
-signal rate is at most p_r. h = max(h_G, h_E).
+signal rate is at most p_r. Autocorrelated residuals (a daily shape the
+model half misses leaves runs of one sign, which a CUSUM adds up) are
+resampled in blocks, by the stationary bootstrap (Politis & Romano 1994)
+with the automatic block length of Politis & White (2004); white ones one
+by one. h = max(h_G, h_E).
 
 *EWMA* (optional): L solves ARL_0(lambda, L) = 1 / p_r (Gaussian only).
 

@@ -40,6 +40,8 @@ class Family:
     onsets: tuple[int, int] = (150, 351)
     #: a family whose daily scheduled refits are dear (15-minute slots: one refit per 96 readings)
     costly: bool = False
+    #: the IANA zone of the feed's clock, set as a site sets ``timezone`` once for its feeds
+    timezone: str | None = None
 
     @property
     def label(self) -> str:
@@ -65,7 +67,7 @@ FAMILIES = [
     # Default settings refit every day (96 slots), so onsets come early (after
     # the DST change, before the first scheduled refit) to keep refits per trial down
     Family("flow15", ar=(0.5,), mean=50.0, interval_s=900.0, cycle=True,
-           start=datetime(2025, 3, 16, tzinfo=timezone.utc), onsets=(20, 81), costly=True,
+           start=datetime(2025, 3, 16, tzinfo=timezone.utc), onsets=(20, 81), costly=True, timezone="Europe/London",
            note="15-min flow, daily + weekly cycle on Europe/London time, AR(1) 0.5 noise, DST change in the trials"),
     # a flow parked at a set point, whole units: 2/3 of readings repeat
     Family("quantized", mean=40.0, sigma=0.4, resolution=1.0,
