@@ -433,3 +433,16 @@ def test_check_config_command(tmp_path, capsys, monkeypatch):
     assert main(["check-config", str(bad)]) == 2
     out, err = capsys.readouterr()
     assert "feeds.defaults.train_points = 10: expected an integer >= 50" in err
+
+
+def test_a_config_that_sets_no_time_zone_is_warned_once_and_one_that_does_is_not(tmp_path):
+    # the cycles' clock: without a zone they are fitted on UTC (the README's note on time zones)
+    plain = config_from_text('[feeds.defaults]\ninterval = "15min"\n'
+                             '[[feeds.override]]\nmatch = "a/*"\nunit = "L/s"\n', tmp_path / "a.toml")
+    about_zone = [w for w in plain.warnings if "feeds.defaults.timezone" in w]
+    assert len(about_zone) == 1 and "UTC" in about_zone[0] and "summer time" in about_zone[0]
+    for text in ('[feeds.defaults]\ntimezone = "Europe/London"\n',
+                 '[[feeds.override]]\nmatch = "a/*"\ntimezone = "Europe/Lisbon"\n',
+                 '[feeds.defaults]\nutc_offset = "1h"\n'):
+        zoned = config_from_text(text, tmp_path / "b.toml")
+        assert not [w for w in zoned.warnings if "feeds.defaults.timezone" in w], text

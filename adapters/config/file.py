@@ -369,6 +369,12 @@ def _read_feeds(root: TableReader, problems: Problems) -> tuple[dict[str, Any], 
             problems.error(reader.path, "sets no option; give at least one key besides match")
         cross_check(merge(defaults, override.options), [*base_layer, (override.path, override.options)], problems)
         overrides.append(override)
+    if not any(key in layer for layer in [explicit, *(o.options for o in overrides)]
+               for key in ("timezone", "utc_offset", "utc_offset_s")):
+        problems.warn("feeds.defaults.timezone",
+                      "not set: daily and weekly cycles are fitted on UTC; a site whose demand follows local "
+                      'time sets its IANA zone once here (for example timezone = "Europe/London"), or the '
+                      "cycles are an hour off after each change of summer time")
     return defaults, explicit, overrides
 
 
