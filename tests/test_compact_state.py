@@ -90,3 +90,20 @@ def test_the_on_delay_window_counts_the_last_n_flags_and_round_trips():
     assert again.to_list() == window.to_list() and again.hits == window.hits
     window.clear()
     assert window.hits == 0 and window.to_list() == []
+
+
+def test_the_noise_burst_statistic_kept_pair_by_pair_equals_the_direct_formula():
+    # Q = 1/2 sum of squared successive differences (von Neumann et al. 1941, the mean square
+    # successive difference), rebuilt from the window at every step, against the pairs kept
+    import random
+
+    from leadline.detector.rules.noise_burst import NoiseBurstRule, successive_difference_statistic
+
+    rule = NoiseBurstRule(24, 1e-4, 1e-3)
+    rng = random.Random(3)
+    for i in range(5000):
+        rule._push(None if rng.random() < 0.15 else rng.gauss(0.0, 1.0))
+        valid = [v for v in rule._values if v is not None]
+        assert rule.valid == len(valid) and rule.statistic == successive_difference_statistic(valid), i
+        if i % 997 == 0:
+            rule.reset()

@@ -224,6 +224,10 @@ class NoiseBurstRule(RuleBase):
 
     def reset(self) -> None:
         self._values: deque[float | None] = deque()
+        # (b - a)^2 of each pair of successive valid values in the window, oldest first:
+        # Q is their fsum, kept pair by pair instead of rebuilt from the window at every step
+        self._squares: deque[float] = deque()
+        self._last_valid: float | None = None
         self._q = 0.0
         self._valid = 0
 
@@ -246,13 +250,24 @@ class NoiseBurstRule(RuleBase):
 
     def _push(self, z: float | None) -> None:
         self._values.append(z)
-        if len(self._values) > self.window:
-            self._values.popleft()
-        self._recount()
+        if z is not None:
+            if self._last_valid is not None:
+                self._squares.append((z - self._last_valid) ** 2)
+            self._last_valid = z
+            self._valid += 1
+        if len(self._values) > self.window and self._values.popleft() is not None:
+            self._valid -= 1
+            if self._squares:  # the oldest valid value leaves, and its pair with the next one
+                self._squares.popleft()
+            if self._valid == 0:
+                self._last_valid = None
+        self._q = 0.5 * math.fsum(self._squares)
 
     def _recount(self) -> None:
         valid = [v for v in self._values if v is not None]
         self._valid = len(valid)
+        self._squares = deque((b - a) ** 2 for a, b in zip(valid, valid[1:]))
+        self._last_valid = valid[-1] if valid else None
         self._q = successive_difference_statistic(valid)
 
     def assess(self, innovation: Innovation) -> Assessment | None:
