@@ -17,7 +17,7 @@ folder, or a throw-away PostgreSQL database dropped afterwards):
    file, subscribed at QoS 1 with a persistent MQTT 5 session) and every feed
    gets ``train_points + 2`` readings, flat out; the benchmark polls the
    store's ``feed_status`` until every feed is ``watching``.
-3. *Latency*: a paced background load (a quarter of the learning phase's
+3. *Latency*: a paced background load (a tenth of the learning phase's
    rate, so the service keeps up and no queue builds) while the publishers
    plant one spike of +20 standard deviations in each of ``--spikes`` feeds,
    0.5-1 s apart (seeded random gaps, so the spikes meet the service's 1 s
@@ -27,9 +27,9 @@ folder, or a throw-away PostgreSQL database dropped afterwards):
    from another connection; each latency is overstated by at most one poll
    interval plus one query, both printed).
 4. *Steady window*: the publishers go flat out again. After a warm-up the
-   window runs from one ``store time`` log line of the service to a later
-   one (``--summary-interval 5``, so the window is whole store-time
-   intervals). Over it, sampled every 0.5 s and fitted by least squares:
+   window runs from one ``store time`` log line of the service to the first
+   one after ``--window`` seconds (``--summary-interval 5``, so the window
+   is whole store-time intervals). Over it, sampled every 0.5 s and fitted by least squares:
    the service's rate (readings committed to its journal: each reading that
    went through the engine and was committed with the events, which is when
    the service acknowledges it; repeats are never journaled), the bare
@@ -69,6 +69,7 @@ import argparse
 import dataclasses
 import math
 import os
+import signal
 import statistics
 import sys
 import tempfile
@@ -84,8 +85,8 @@ for _path in (str(HERE), str(HERE.parent)):  # this folder (e2e_*), tests/ (mqtt
 import numpy as np  # noqa: E402
 
 from e2e_clients import Publishers, feed_of  # noqa: E402
-from e2e_site import (PgDatabase, ServiceProcess, StoreProbe, cpu_seconds, machine_busy_s, parse_store_time,  # noqa: E402
-                      pg_reachable, pids_named, utc_now_s, write_config)
+from e2e_site import (PgDatabase, ServiceProcess, StoreProbe, cpu_seconds, machine_busy_s,  # noqa: E402
+                      parse_store_time, pg_reachable, pids_named, utc_now_s, write_config)
 from mqtt_broker import MosquittoBroker, mosquitto_binary  # noqa: E402
 
 PARTS = ("events", "journal", "snapshots", "status", "commit", "other")
@@ -105,7 +106,7 @@ class Plan:
     train_points: int = 50
     snapshot_interval_s: float = 30.0
     poll_s: float = 0.02
-    latency_load: float = 0.25
+    latency_load: float = 0.1
     sample_s: float = 0.5
 
 
@@ -278,20 +279,23 @@ def steady(pubs: Publishers, probe: StoreProbe, service: ServiceProcess, cpu: Cp
         next_store_time()
         if time.monotonic() >= warm_until:
             break
-    lines_needed = max(1, round(plan.window_s / plan.summary_interval_s))
     t_start, c_start = time.monotonic(), cpu.take()
     samples = []
     lines: list[dict[str, float]] = []
     pending: list[str] = []
     next_sample = t_start
-    while len(lines) < lines_needed:
+    # ...and ends at the first store time line once window_s has passed (a line comes late when the loop is busy).
+    while True:
         _check_alive(service)
         now = time.monotonic()
         if now >= next_sample:
             samples.append((now, probe.journaled(), pubs.received_total(), pubs.acked_total()))
             next_sample += plan.sample_s
-        pending = service.new_lines()
-        lines += [f for f in map(parse_store_time, pending) if f is not None]
+        pending = [f for f in map(parse_store_time, service.new_lines()) if f is not None]
+        if pending and time.monotonic() - t_start >= plan.window_s:
+            lines += pending
+            break
+        lines += pending
         time.sleep(0.02)
     t_end, c_end = time.monotonic(), cpu.take()
     samples.append((t_end, probe.journaled(), pubs.received_total(), pubs.acked_total()))
@@ -386,6 +390,7 @@ def table(results: list[CaseResult]) -> list[str]:
 
 
 def main(argv: list[str] | None = None) -> int:
+    signal.signal(signal.SIGTERM, lambda signum, frame: sys.exit(143))  # clean up brokers, services, databases
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--feeds", type=int, nargs="+", help="numbers of feeds (default 1000 10000; --quick 200)")
     parser.add_argument("--store", choices=["sqlite", "postgresql", "both"], default="both")
