@@ -10,7 +10,8 @@ feeds and each store, on a fresh private Mosquitto (``tests/mqtt_broker.py``,
 a free loopback port) and a fresh store (an SQLite file in a temporary
 folder, or a throw-away PostgreSQL database dropped afterwards):
 
-1. *Publishers alone*: P = 3 paho publisher processes publish QoS 1 JSON
+1. *Publishers alone*: P = 3 paho publisher processes (at nice 5,
+   ``e2e_clients``) publish QoS 1 JSON
    readings (``{"t": epoch_s, "v": value}`` on ``e2e/gNNN/mNN``) flat out to
    the broker with only the bare client subscribed: the publishers' own rate.
 2. *Learning*: the real ``leadline run`` starts (a subprocess with a config
@@ -282,7 +283,6 @@ def steady(pubs: Publishers, probe: StoreProbe, service: ServiceProcess, cpu: Cp
     t_start, c_start = time.monotonic(), cpu.take()
     samples = []
     lines: list[dict[str, float]] = []
-    pending: list[str] = []
     next_sample = t_start
     # ...and ends at the first store time line once window_s has passed (a line comes late when the loop is busy).
     while True:

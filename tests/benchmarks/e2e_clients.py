@@ -12,7 +12,11 @@ same instant:
   messages, flat out until told to stop, or paced at a rate while planting
   spikes. Flat out means as fast as paho goes while at most
   :data:`IN_FLIGHT` messages wait for their PUBACK (so paho's own queue
-  cannot hide a slow broker).
+  cannot hide a slow broker). Publishers run at nice :data:`PUBLISHER_NICE`:
+  on a machine with fewer cores than processes the scheduler then serves the
+  service and the bare client first; whether the publishers still kept
+  ahead is read from their rate in the window (bench_end_to_end.py's
+  "limited by").
 * :func:`bare_main`: a paho client that only subscribes (QoS 1, MQTT 5,
   receive maximum 1000 like the service's default) and parses each
   payload's JSON and its two numbers, counting in ``received``.
