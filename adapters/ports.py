@@ -38,8 +38,8 @@ from typing import Any, Protocol, Sequence, runtime_checkable
 from leadline.detector.events import AlarmEvent
 from leadline.detector.readings import Reading
 
-__all__ = ["ALIVE_BEATS", "AlarmPublisher", "EventSink", "FeedStatusRow", "Heartbeat", "RejectSample", "Source",
-           "SourceOffset"]
+__all__ = ["ALIVE_BEATS", "STORE_TIME_PARTS", "AlarmPublisher", "EventSink", "FeedStatusRow", "Heartbeat",
+           "RejectSample", "Source", "SourceOffset", "StoreTime"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -116,6 +116,35 @@ class Heartbeat:
         """True while the last beat is younger than :data:`ALIVE_BEATS` beat intervals."""
         return (now - self.beat_at).total_seconds() < ALIVE_BEATS * max(self.beat_interval_s, 1.0)
 
+
+
+#: The parts of a flush's time (:mod:`leadline.adapters.store.timing`); ``commit`` is the remainder.
+STORE_TIME_PARTS = ("events", "journal", "snapshots", "status", "other", "commit")
+
+
+@dataclass(frozen=True, slots=True)
+class StoreTime:
+    """Seconds the store's flushes spent per part over ``window_s`` seconds of wall time."""
+
+    window_s: float
+    flushes: int
+    seconds: dict[str, float]
+
+    @property
+    def total_s(self) -> float:
+        return sum(self.seconds.values())
+
+    def fields(self) -> dict[str, float | int]:
+        """For one log line: the window, the flushes, the busy share, then seconds and % of each part."""
+        total = self.total_s
+        busy = 100.0 * total / self.window_s if self.window_s > 0 else 0.0
+        out: dict[str, float | int] = {"window_s": round(self.window_s, 1), "flushes": self.flushes,
+                                       "busy_pct": round(busy, 1)}
+        for part in STORE_TIME_PARTS:
+            seconds = self.seconds.get(part, 0.0)
+            out[f"{part}_s"] = round(seconds, 3)
+            out[f"{part}_pct"] = round(100.0 * seconds / total, 1) if total > 0 else 0.0
+        return out
 
 
 @runtime_checkable
@@ -203,6 +232,9 @@ class EventSink(Protocol):
 
     def flush(self) -> int:
         """Commit everything staged in one transaction; return the events written."""
+
+    def take_store_time(self) -> StoreTime:
+        """The flushes' time per part since the last call (:class:`StoreTime`), then reset."""
 
     def close(self) -> None:
         """Flush what is staged, then release the connections."""

@@ -11,6 +11,7 @@ and watchdog: :mod:`leadline.adapters.service.sd_notify`.
 
 from __future__ import annotations
 
+import argparse
 import logging
 import sys
 
@@ -46,6 +47,8 @@ def add_parser(subparsers) -> None:
                    help="text lines (default) or one JSON object per line")
     p.add_argument("--startup-timeout", type=float, default=30.0, metavar="SECONDS",
                    help="how long to wait for the store and brokers at start before exiting with 75 (30)")
+    p.add_argument("--summary-interval", type=_positive_seconds, default=60.0, metavar="SECONDS",
+                   help="how often the summary and store time lines are logged (60)")
     p.set_defaults(handler=_handle)
 
 
@@ -78,6 +81,7 @@ def _handle(args) -> int:
         _close_quietly(service)
         return EX_TEMPFAIL
     service.notifier = Notifier()
+    service.summary_interval_s = args.summary_interval
     if args.replay:
         shown = Progress(sys.stdout, "replaying", unit="readings")
         service.progress = lambda svc: shown.update(
@@ -91,6 +95,16 @@ def _handle(args) -> int:
     except Exception:  # noqa: BLE001 - a bug: logged with its traceback, and a status systemd restarts on
         logger.exception("internal error; exit status %d", EX_SOFTWARE)
         return EX_SOFTWARE
+
+
+def _positive_seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not (value > 0 and value < float("inf")):
+        raise argparse.ArgumentTypeError(f"expected a positive number of seconds, got {text!r}")
+    return value
 
 
 def _close_quietly(service: Service) -> None:

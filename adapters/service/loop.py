@@ -21,7 +21,9 @@ One :class:`Service` owns the running parts and does, until it is asked to stop:
 7. log one line per event, connection change and refit, one line per
    source and reject reason per minute (exact reject counts go to the
    store, :mod:`.reject_summary`), and a summary line every
-   ``summary_interval_s`` (readings/s, queue depth, alarms active);
+   ``summary_interval_s`` (readings/s, queue depth, alarms active) with a
+   ``store time`` line (the flushes' time per part, also at shutdown;
+   :mod:`leadline.adapters.store.timing`);
 8. when the store fails, retry the flush with exponential backoff
    (``store_retry_base_s`` doubling up to ``store_retry_cap_s``, :mod:`.backoff`),
    logging one line when it goes down and one when it is back; meanwhile
@@ -460,6 +462,10 @@ class Service(FeedReports, Refits):
                                  f"{active} alarms active; store {'down' if self.store_backoff.down else 'up'}")
         self._last_summary = now
         self._readings_since_summary = 0
+        self._log_store_time()
+
+    def _log_store_time(self) -> None:
+        logger.info(log_fields("store time", **self.store.take_store_time().fields()))
 
     def _shutdown(self) -> None:
         if self.notifier is not None:
@@ -473,6 +479,7 @@ class Service(FeedReports, Refits):
             self.durability.stage_snapshots(self.engine)
         self._stage_checkpoints()
         self._commit(force=True)
+        self._log_store_time()
         if self.store_backoff.down:
             logger.error(log_fields("store still down at shutdown; staged work not committed",
                                     readings=self._pending_readings,

@@ -27,7 +27,7 @@ from typing import Any, Callable
 
 from sqlalchemy import Engine, func, select
 
-from leadline.adapters.ports import RejectSample, SourceOffset
+from leadline.adapters.ports import RejectSample, SourceOffset, StoreTime
 from leadline.detector.errors import StoreError
 from leadline.detector.events import AlarmEvent
 from leadline.detector.evidence import EvidenceRecord
@@ -43,6 +43,7 @@ from .feed_status import FeedStatusRow, Heartbeat
 from .queries import shelved_feeds
 from .queries import accept_notes_after
 from .records import AcceptNote
+from .timing import StoreTiming
 from .writer import WriteBuffer, write_buffer
 
 
@@ -85,6 +86,7 @@ class EventWriter(StoreHandle):
         self._last_flush = time.monotonic()
         self._feed_keys: dict[str, int] = {}
         self._next_seq: int | None = None
+        self._timing = StoreTiming()
 
     # ------------------------------------------------------------------ info
     @property
@@ -346,11 +348,17 @@ class EventWriter(StoreHandle):
             if not len(self._buffer):
                 self._last_flush = time.monotonic()
                 return 0
-            with write_transaction(self._engine, f"flushing {self.staged_events} staged events") as conn:
-                n = write_buffer(conn, self._buffer, self._clock())
+            with self._timing.flush(), write_transaction(self._engine,
+                                                         f"flushing {self.staged_events} staged events") as conn:
+                n = write_buffer(conn, self._buffer, self._clock(), self._timing)
             self._buffer = WriteBuffer()
             self._last_flush = time.monotonic()
             return n
+
+    def take_store_time(self) -> StoreTime:
+        """The flushes' time per part since the last call, then reset (:mod:`.timing`)."""
+        with self._lock:
+            return self._timing.take()
 
     def flush_due(self, now_monotonic: float | None = None) -> bool:
         """True when something is staged and either ``flush_interval_s`` has

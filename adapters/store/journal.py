@@ -30,13 +30,16 @@ acknowledged when the service died, and comes again.
 from __future__ import annotations
 
 import math
+from contextlib import nullcontext
 from dataclasses import dataclass, field
+from typing import Any
 
 from sqlalchemy import (BigInteger, Column, Connection, Double, Index, Integer, LargeBinary, MetaData, Table, Text,
                         UniqueConstraint, bindparam, case, delete, func, or_, select, update)
 
 from .coltypes import UTCDateTime
 from .dialects import SURROGATE_ID
+from .timing import NO_TIMING
 
 
 def add_journal_tables(md: MetaData) -> None:
@@ -96,25 +99,34 @@ class JournalState:
     last_t: dict[str, float] = field(default_factory=dict)
 
 
-def write_journal(conn: Connection, md: MetaData, buf: JournalBuffer, now) -> None:
-    """Write one flush's journal rows, counts and snapshots (in the caller's transaction)."""
+def write_journal(conn: Connection, md: MetaData, buf: JournalBuffer, now, timing: Any = NO_TIMING) -> None:
+    """Write one flush's journal rows, counts and snapshots (in the caller's transaction).
+
+    ``timing`` (:class:`~.timing.StoreTiming`) gets the rows and counts as ``journal``, the
+    snapshots with their truncation as ``snapshots``.
+    """
     jf, j = md.tables["journal_feeds"], md.tables["journal"]
-    if buf.new_feeds:
-        conn.execute(jf.insert(), [{"feed_key": k, "feed_id": f, "journaled": 0} for k, f in buf.new_feeds.items()])
-    if buf.rows:
-        conn.execute(j.insert(), [{"seq": s, "feed_key": k, "t": t, "value": v} for s, k, t, v in buf.rows])
-    if buf.counts:
-        t = bindparam("t")
-        conn.execute(update(jf).where(jf.c.feed_key == bindparam("k")).values(
-            journaled=jf.c.journaled + bindparam("n"),
-            last_t=case((or_(jf.c.last_t.is_(None), jf.c.last_t < t), t), else_=jf.c.last_t)),
-            [{"k": k, "n": n, "t": buf.last_t[k]} for k, n in buf.counts.items()])
-    for key, (seq, version, state) in buf.snapshots.items():
-        previous = conn.execute(select(jf.c.snapshot_seq).where(jf.c.feed_key == key)).scalar()
-        if previous is not None:
-            conn.execute(delete(j).where(j.c.feed_key == key, j.c.seq <= previous))
-        conn.execute(update(jf).where(jf.c.feed_key == key).values(snapshot_seq=seq, model_version=version,
-                                                                    snapshot=state, snapshot_at=now))
+    with timing.part("journal") if (buf.new_feeds or buf.rows or buf.counts) else nullcontext():
+        if buf.new_feeds:
+            conn.execute(jf.insert(), [{"feed_key": k, "feed_id": f, "journaled": 0}
+                                       for k, f in buf.new_feeds.items()])
+        if buf.rows:
+            conn.execute(j.insert(), [{"seq": s, "feed_key": k, "t": t, "value": v} for s, k, t, v in buf.rows])
+        if buf.counts:
+            t = bindparam("t")
+            conn.execute(update(jf).where(jf.c.feed_key == bindparam("k")).values(
+                journaled=jf.c.journaled + bindparam("n"),
+                last_t=case((or_(jf.c.last_t.is_(None), jf.c.last_t < t), t), else_=jf.c.last_t)),
+                [{"k": k, "n": n, "t": buf.last_t[k]} for k, n in buf.counts.items()])
+    if not buf.snapshots:
+        return
+    with timing.part("snapshots"):
+        for key, (seq, version, state) in buf.snapshots.items():
+            previous = conn.execute(select(jf.c.snapshot_seq).where(jf.c.feed_key == key)).scalar()
+            if previous is not None:
+                conn.execute(delete(j).where(j.c.feed_key == key, j.c.seq <= previous))
+            conn.execute(update(jf).where(jf.c.feed_key == key).values(snapshot_seq=seq, model_version=version,
+                                                                        snapshot=state, snapshot_at=now))
 
 
 def read_journal(conn: Connection, md: MetaData) -> JournalState:

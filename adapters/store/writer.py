@@ -43,6 +43,7 @@ from leadline.detector.evidence import EvidenceRecord
 
 from . import schema
 from .journal import JournalBuffer, write_journal
+from .timing import NO_TIMING
 from .evidence import write_evidence
 from .feed_status import FeedStatusRow, Heartbeat, write_feed_status, write_heartbeat
 from .coltypes import dumps_json
@@ -301,7 +302,7 @@ def event_upsert_for(dialect: Dialect) -> EventUpsert:
     return up
 
 
-def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
+def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime, timing: Any = NO_TIMING) -> int:
     """Write everything in ``buf`` within the caller's open transaction.
 
     Parameters
@@ -312,6 +313,8 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
         Left unchanged: the caller clears it only after the commit returned.
     now : datetime
         UTC; ``created_at`` / ``updated_at`` of the rows.
+    timing : leadline.adapters.store.timing.StoreTiming, optional
+        Adds each part's time (events, journal, snapshots, status, other).
 
     Returns
     -------
@@ -322,73 +325,86 @@ def write_buffer(conn: Connection, buf: WriteBuffer, now: datetime) -> int:
     feed_ids = ({k[0] for k in buf.events} | set(buf.checkpoints) | {k[0] for k in buf.evidence}
                 | set(buf.feed_status))
     if feed_ids:
-        stmt = insert(schema.feeds).on_conflict_do_nothing(index_elements=[schema.feeds.c.feed_id])
-        conn.execute(stmt, [{"feed_id": f, "created_at": now} for f in sorted(feed_ids)])
+        with timing.part("status"):
+            stmt = insert(schema.feeds).on_conflict_do_nothing(index_elements=[schema.feeds.c.feed_id])
+            conn.execute(stmt, [{"feed_id": f, "created_at": now} for f in sorted(feed_ids)])
 
-    if buf.events:
-        up = event_upsert_for(conn.dialect)
-        conn.exec_driver_sql(up.sql, up.rows(buf.events.values(), now, buf.parameters_json))
-
-    if buf.evidence:
-        write_evidence(conn, insert, buf.evidence.values(), now)
+    if buf.events or buf.evidence:
+        with timing.part("events"):
+            if buf.events:
+                up = event_upsert_for(conn.dialect)
+                conn.exec_driver_sql(up.sql, up.rows(buf.events.values(), now, buf.parameters_json))
+            if buf.evidence:
+                write_evidence(conn, insert, buf.evidence.values(), now)
 
     if buf.checkpoints:
-        cp = schema.checkpoints
-        stmt = insert(cp)
-        stmt = stmt.on_conflict_do_update(
-            index_elements=[cp.c.feed_id],
-            set_={
-                "state": stmt.excluded.state,
-                "model_version": stmt.excluded.model_version,
-                "updated_at": stmt.excluded.updated_at,
-            },
-        )
-        conn.execute(
-            stmt,
-            [
-                {"feed_id": f, "state": state, "model_version": version, "updated_at": now}
-                for f, (state, version) in buf.checkpoints.items()
-            ],
-        )
-
+        with timing.part("snapshots"):
+            _write_checkpoints(conn, insert, buf, now)
     if buf.offsets:
-        so = schema.source_offsets
-        stmt = insert(so)
-        stmt = stmt.on_conflict_do_update(
-            index_elements=[so.c.source, so.c.path],
-            set_={c: getattr(stmt.excluded, c) for c in ("device", "inode", "offset_bytes", "updated_at")},
-        )
-        conn.execute(
-            stmt,
-            [
-                {
-                    "source": o.source,
-                    "path": o.path,
-                    "device": o.device,
-                    "inode": o.inode,
-                    "offset_bytes": o.offset_bytes,
-                    "updated_at": o.updated_at,
-                }
-                for o in buf.offsets.values()
-            ],
-        )
-
+        with timing.part("journal"):
+            _write_offsets(conn, insert, buf)
     if buf.rejects:
-        _write_rejects(conn, insert, buf)
-    if buf.feed_status:
-        write_feed_status(conn, insert, buf.feed_status.values(), now)
-    if buf.heartbeat is not None:
-        write_heartbeat(conn, insert, buf.heartbeat)
-
+        with timing.part("other"):
+            _write_rejects(conn, insert, buf)
+    if buf.feed_status or buf.heartbeat is not None:
+        with timing.part("status"):
+            if buf.feed_status:
+                write_feed_status(conn, insert, buf.feed_status.values(), now)
+            if buf.heartbeat is not None:
+                write_heartbeat(conn, insert, buf.heartbeat)
     if buf.marks:
-        sm = schema.service_marks
-        stmt = insert(sm)
-        stmt = stmt.on_conflict_do_update(index_elements=[sm.c.name],
-                                          set_={"value": stmt.excluded.value, "updated_at": stmt.excluded.updated_at})
-        conn.execute(stmt, [{"name": k, "value": int(v), "updated_at": now} for k, v in buf.marks.items()])
+        with timing.part("other"):
+            sm = schema.service_marks
+            stmt = insert(sm)
+            stmt = stmt.on_conflict_do_update(index_elements=[sm.c.name], set_={
+                "value": stmt.excluded.value, "updated_at": stmt.excluded.updated_at})
+            conn.execute(stmt, [{"name": k, "value": int(v), "updated_at": now} for k, v in buf.marks.items()])
     if len(buf.journal):
-        write_journal(conn, schema.metadata, buf.journal, now)
+        write_journal(conn, schema.metadata, buf.journal, now, timing)
     return len(buf.events)
+
+
+def _write_checkpoints(conn: Connection, insert: Callable[..., Any], buf: WriteBuffer, now: datetime) -> None:
+    cp = schema.checkpoints
+    stmt = insert(cp)
+    stmt = stmt.on_conflict_do_update(
+        index_elements=[cp.c.feed_id],
+        set_={
+            "state": stmt.excluded.state,
+            "model_version": stmt.excluded.model_version,
+            "updated_at": stmt.excluded.updated_at,
+        },
+    )
+    conn.execute(
+        stmt,
+        [
+            {"feed_id": f, "state": state, "model_version": version, "updated_at": now}
+            for f, (state, version) in buf.checkpoints.items()
+        ],
+    )
+
+
+def _write_offsets(conn: Connection, insert: Callable[..., Any], buf: WriteBuffer) -> None:
+    so = schema.source_offsets
+    stmt = insert(so)
+    stmt = stmt.on_conflict_do_update(
+        index_elements=[so.c.source, so.c.path],
+        set_={c: getattr(stmt.excluded, c) for c in ("device", "inode", "offset_bytes", "updated_at")},
+    )
+    conn.execute(
+        stmt,
+        [
+            {
+                "source": o.source,
+                "path": o.path,
+                "device": o.device,
+                "inode": o.inode,
+                "offset_bytes": o.offset_bytes,
+                "updated_at": o.updated_at,
+            }
+            for o in buf.offsets.values()
+        ],
+    )
 
 
 def _write_rejects(conn: Connection, insert: Callable[..., Any], buf: WriteBuffer) -> None:
