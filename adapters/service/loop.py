@@ -187,6 +187,7 @@ class Service(FeedReports, Refits):
         self._stop = threading.Event()
         self._pool: ProcessPoolExecutor | None = None
         self._fits: dict[Future, Any] = {}
+        self._fits_of: dict[str, list[Future]] = {}  # the fits in flight by feed, in request order
         self._pending_acks: list[tuple[Source, list[Reading]]] = []
         self._to_publish: list[AlarmEvent] = []
         self._last_commit = time.monotonic()

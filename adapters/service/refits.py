@@ -32,20 +32,29 @@ class Refits:
                 future.set_result(self.refit(request))
             except Exception as exc:  # noqa: BLE001 - reported per feed, the service goes on
                 future.set_exception(exc)
-            self._fits[future] = request
+            self._track(future, request)
             self._collect_fits(block=True)  # inline: installed before the next reading, as a replay does
             return
         else:
             future = self._pool.submit(self.refit, request)
-        self._fits[future] = request
+        self._track(future, request)
         if self.refit_install_delay_slots is not None:
             self._install_at[future] = (float(request.epoch_s[-1])
                                         + (self.refit_install_delay_slots + 1) * float(request.interval_s))
 
+    def _track(self, future: Future, request: Any) -> None:
+        self._fits[future] = request
+        self._fits_of.setdefault(request.feed_id, []).append(future)
+
     def _install_due(self, feed_id: str, epoch_s: float) -> None:
-        """Install (waiting if needed) the feed's fit whose install time ``epoch_s`` has reached."""
-        for future, request in list(self._fits.items()):
-            if request.feed_id == feed_id and self._install_at.get(future, -float("inf")) <= epoch_s:
+        """Install (waiting if needed) the feed's fit whose install time ``epoch_s`` has reached.
+
+        Called for every reading: it looks only at the fits of ``feed_id``
+        (``_fits_of``), so its cost does not grow with the fits in flight
+        elsewhere (thousands while a site's feeds learn together).
+        """
+        for future in list(self._fits_of.get(feed_id, ())):
+            if self._install_at.get(future, -float("inf")) <= epoch_s:
                 self._finish_fit(future)
 
     def _collect_fits(self, block: bool, held: bool = False) -> None:
@@ -60,6 +69,11 @@ class Refits:
     def _finish_fit(self, future: Future) -> None:
         request = self._fits.pop(future)
         self._install_at.pop(future, None)
+        mine = self._fits_of.get(request.feed_id)
+        if mine is not None:
+            mine.remove(future)
+            if not mine:
+                del self._fits_of[request.feed_id]
         try:
             fitted, thresholds = future.result()
         except Exception as exc:  # noqa: BLE001 - a failed fit is logged; the feed keeps its old model

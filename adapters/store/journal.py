@@ -42,6 +42,11 @@ from .dialects import SURROGATE_ID
 from .timing import NO_TIMING
 
 
+#: Feed keys per ``IN (...)`` list when a snapshot round reads the previous positions
+#: (well under SQLite's limit of bound parameters).
+SNAPSHOT_CHUNK = 500
+
+
 def add_journal_tables(md: MetaData) -> None:
     """Add ``journal_feeds`` and ``journal`` to ``md`` (schema step ``_add_journal``)."""
     Table(
@@ -121,12 +126,22 @@ def write_journal(conn: Connection, md: MetaData, buf: JournalBuffer, now, timin
     if not buf.snapshots:
         return
     with timing.part("snapshots"):
-        for key, (seq, version, state) in buf.snapshots.items():
-            previous = conn.execute(select(jf.c.snapshot_seq).where(jf.c.feed_key == key)).scalar()
-            if previous is not None:
-                conn.execute(delete(j).where(j.c.feed_key == key, j.c.seq <= previous))
-            conn.execute(update(jf).where(jf.c.feed_key == key).values(snapshot_seq=seq, model_version=version,
-                                                                        snapshot=state, snapshot_at=now))
+        # three statements for the whole round, not three per feed: the previous positions in
+        # chunks, then one executemany each for the truncation and the new snapshots
+        keys = list(buf.snapshots)
+        previous: dict[int, int] = {}
+        for start in range(0, len(keys), SNAPSHOT_CHUNK):
+            chunk = keys[start:start + SNAPSHOT_CHUNK]
+            previous.update((k, p) for k, p in conn.execute(
+                select(jf.c.feed_key, jf.c.snapshot_seq).where(jf.c.feed_key.in_(chunk))) if p is not None)
+        if previous:
+            conn.execute(delete(j).where(j.c.feed_key == bindparam("k"), j.c.seq <= bindparam("p")),
+                         [{"k": k, "p": p} for k, p in previous.items()])
+        conn.execute(update(jf).where(jf.c.feed_key == bindparam("k")).values(
+            snapshot_seq=bindparam("s"), model_version=bindparam("m"), snapshot=bindparam("b"),
+            snapshot_at=bindparam("a", type_=UTCDateTime())),
+            [{"k": k, "s": seq, "m": version, "b": state, "a": now}
+             for k, (seq, version, state) in buf.snapshots.items()])
 
 
 def read_journal(conn: Connection, md: MetaData) -> JournalState:
