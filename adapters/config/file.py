@@ -57,6 +57,7 @@ class StoreConfig:
     journal: bool = True
     snapshot_interval_s: float = 30.0
     snapshot_readings: int = 100_000
+    snapshot_max_feeds: int = 2_000
 
     @property
     def safe_url(self) -> str:
@@ -325,6 +326,7 @@ def _read_store(reader: TableReader | None, base: Path, problems: Problems) -> S
         journal=reader.get("journal", boolean, True),
         snapshot_interval_s=reader.get("snapshot_interval_s", number(0, 86400, low_open=True), 30.0),
         snapshot_readings=reader.get("snapshot_readings", integer(1, 100_000_000), 100_000),
+        snapshot_max_feeds=reader.get("snapshot_max_feeds", integer(1, 100_000_000), 2_000),
     )
 
 

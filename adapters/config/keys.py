@@ -33,6 +33,8 @@ Schema
                                       replay it after a crash (default true)
     snapshot_interval_s     number    snapshot every feed's state at least this often (30)
     snapshot_readings       integer   ...or after this many journaled readings (100000)
+    snapshot_max_feeds      integer   feeds snapshotted per round at most, those with most new
+                                      readings first (2000); a feed with none is skipped
     ======================  ========  ==========================================================
 
 ``[[sources.csv]]`` (followed files; any number)
@@ -200,7 +202,8 @@ RESERVED_SHIFT_NAMES = ("last", "current", "timezone")
 
 TOP_KEYS = ("store", "sources", "feeds", "refit", "publish", "shifts", "shelving", "site")
 STORE_KEYS = ("url", "flush_interval_s", "flush_events", "retry_base_s", "retry_cap_s", "journal",
-              "snapshot_interval_s", "snapshot_readings")
+              "snapshot_interval_s", "snapshot_readings",
+              "snapshot_max_feeds")
 REFIT_KEYS = ("every", "on_degraded", "window_points", "window_span", "workers", "install_delay_slots")
 PUBLISH_KEYS = ("broker", "client_id", "topic_template", "status_topic_template", "max_queued_messages")
 EVENT_TOPIC_FIELDS = ("feed", "rule", "severity")

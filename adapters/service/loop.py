@@ -399,6 +399,8 @@ class Service(FeedReports, Refits):
             logger.warning(log_fields("accept notes not read", error=str(exc)))
             return
         if applied:
+            if self.durability is not None:  # the accepted state is what a restart must resume
+                self.durability.stage_snapshots(self.engine, all_feeds=True, force=True)
             self._stage_checkpoints()
             self._commit()
 
@@ -477,7 +479,7 @@ class Service(FeedReports, Refits):
         while self._poll_once(timeout_s=0.0):
             pass
         if self.durability is not None:
-            self.durability.stage_snapshots(self.engine)
+            self.durability.stage_snapshots(self.engine, all_feeds=True)
         self._stage_checkpoints()
         self._commit(force=True)
         self._log_store_time()

@@ -123,7 +123,8 @@ def build_service(config: Config, *, from_start: bool = False, refit_workers: in
     if config.store.journal:
         # Snapshots and the journal after them are restored when the service starts (:mod:`.durability`).
         durability = Durability(store, snapshot_interval_s=config.store.snapshot_interval_s,
-                                snapshot_every_readings=config.store.snapshot_readings)
+                                snapshot_every_readings=config.store.snapshot_readings,
+                                snapshot_max_feeds=config.store.snapshot_max_feeds)
     for feed_id, (state, version) in ({} if durability else store.load_checkpoints()).items():
         try:
             engine.restore(feed_id, state, version)
