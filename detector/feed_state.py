@@ -400,9 +400,9 @@ def feed_checkpoint(feed: Any) -> bytes:
     }
     arrays["stream"] = np.frombuffer(feed.monitor.stream.to_bytes(), dtype=np.uint8)
     arrays["history"] = feed.history.stored()  # float32 departures from history_reference
-    header["history_reference"] = feed.history.reference
+    header["history_reference"] = feed.history.saved_reference
     arrays["diagnostics_z"] = feed.diagnostics.z.stored()  # float32 departures from z_reference
-    header["diagnostics"]["z_reference"] = feed.diagnostics.z.reference
+    header["diagnostics"]["z_reference"] = feed.diagnostics.z.saved_reference
     return pack(header, arrays)
 
 

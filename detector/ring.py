@@ -47,7 +47,7 @@ class RingBuffer:
         ``values``, or the first finite value appended).
     """
 
-    __slots__ = ("_capacity", "_dtype", "_data", "_start", "_len", "reference")
+    __slots__ = ("_capacity", "_dtype", "_data", "_start", "_len", "reference", "_anchored")
 
     def __init__(self, capacity: int, values: Any = (), dtype: Any = np.float64,
                  reference: float | None = None) -> None:
@@ -61,17 +61,26 @@ class RingBuffer:
         self._start = 0
         self._len = 0
         self.reference = 0.0 if reference is None else float(reference)
+        # a float32 ring takes its reference from its first values unless one was given
+        self._anchored = reference is not None or self._dtype == np.float64
         first = np.asarray(values, dtype=float).ravel()[-self._capacity:]
         if first.size:
-            if reference is None and self._dtype == np.float32:
+            if not self._anchored:
                 finite = first[np.isfinite(first)]
-                self.reference = float(finite.mean()) if finite.size else 0.0
+                if finite.size:
+                    self.reference = float(finite.mean())
+                    self._anchored = True
             self._allocate()
             self._data[:first.size] = first - self.reference
             self._len = int(first.size)
 
     def _allocate(self) -> None:
         self._data = np.full(self._capacity, np.nan, dtype=self._dtype)
+
+    @property
+    def saved_reference(self) -> float | None:
+        """The reference to save with :meth:`stored` (None while a float32 ring has not taken one yet)."""
+        return self.reference if self._anchored else None
 
     @property
     def capacity(self) -> int:
@@ -86,9 +95,10 @@ class RingBuffer:
 
     def append(self, value: float) -> None:
         """Keep one value, dropping the oldest when full."""
+        if not self._anchored and math.isfinite(value):
+            self.reference = float(value)
+            self._anchored = True
         if self._data is None:
-            if self._dtype == np.float32 and self.reference == 0.0 and math.isfinite(value):
-                self.reference = float(value)
             self._allocate()
         cap = self._capacity
         if self._len < cap:
@@ -131,8 +141,11 @@ class RingBuffer:
         self._len = 0
 
     @classmethod
-    def from_stored(cls, capacity: int, stored: Any, reference: float, dtype: Any) -> "RingBuffer":
-        """A ring holding :meth:`stored` values again, bit for bit (a checkpoint's restore)."""
+    def from_stored(cls, capacity: int, stored: Any, reference: float | None, dtype: Any) -> "RingBuffer":
+        """A ring holding :meth:`stored` values again, bit for bit (a checkpoint's restore).
+
+        ``reference`` is :attr:`saved_reference`: None restores a ring that has not taken one yet.
+        """
         ring = cls(capacity, dtype=dtype, reference=reference)
         data = np.asarray(stored, dtype=ring._dtype).ravel()[-ring._capacity:]
         if data.size:

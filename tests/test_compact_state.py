@@ -107,3 +107,21 @@ def test_the_noise_burst_statistic_kept_pair_by_pair_equals_the_direct_formula()
         assert rule.valid == len(valid) and rule.statistic == successive_difference_statistic(valid), i
         if i % 997 == 0:
             rule.reset()
+
+
+def test_a_ring_that_has_not_taken_its_reference_yet_restores_the_same():
+    # all missing so far: the reference comes from the first finite value, after a restore too
+    ring = RingBuffer(10, [math.nan, math.nan], dtype=np.float32)
+    again = RingBuffer.from_stored(10, ring.stored(), ring.saved_reference, np.float32)
+    for v in (123.456789, 124.0):
+        ring.append(v)
+        again.append(v)
+    assert ring.reference == again.reference == 123.456789
+    assert again.to_array().tobytes() == ring.to_array().tobytes()
+    cleared = RingBuffer(4, dtype=np.float32)
+    cleared.append(0.0)
+    cleared.clear()
+    restored = RingBuffer.from_stored(4, cleared.stored(), cleared.saved_reference, np.float32)
+    cleared.append(5.5)
+    restored.append(5.5)
+    assert restored.reference == cleared.reference == 0.0
