@@ -37,7 +37,8 @@ For each reading :meth:`FeedMonitor.process` does, in order:
 6. **The level condition** (:class:`~.level_condition.LevelCondition`):
    every finite in-range reading, less the model's calendar part x_t' beta,
    is kept, except while a flatline episode is open (a frozen transmitter's
-   readings are not the process, so they never become the level before). When a CUSUM episode opens, the level before its run is frozen;
+   readings are not the process, so they never become the level before).
+   When a CUSUM episode opens, the level before its run is frozen;
    while the readings stay away from it the episode stays open (the CUSUM's
    verdict becomes the deadband), and once the departure was established
    and the readings have returned, it clears after the off-delay whatever
