@@ -54,3 +54,33 @@ def test_feed_status_is_upserted_per_feed_and_the_latest_heartbeat_kept(store_ur
         assert beat.alive(T0 + timedelta(seconds=20)) and not beat.alive(T0 + timedelta(seconds=30))
         # the feed row exists for the status row's foreign key
         assert [f.feed_id for f in store.feeds()] == [FEED]
+
+
+def test_status_rows_of_feeds_with_readings_only_wait_for_the_status_interval(tmp_path):
+    # a change of state is written with the next commit; a feed whose only news is readings at most
+    # every status_interval_s, and always at shutdown (a forced commit)
+    import time
+
+    from engine_helpers import settings
+
+    from leadline.adapters.service.loop import Service
+    from leadline.detector.engine import Engine
+    from leadline.detector.readings import Reading
+
+    store = open_store(str(tmp_path / "s.db"))
+    engine = Engine(lambda feed_id: settings())
+    service = Service(engine=engine, store=store, sources=[], refit_workers=0)
+    t0 = datetime(2026, 5, 4, tzinfo=timezone.utc)
+    for feed_id in ("reads-only", "changed"):
+        engine.process(Reading(feed_id, t0, 40.0))
+    service.status_interval_s = 3600.0
+    service._last_status = time.monotonic()
+    service._read_feeds = {"reads-only"}
+    service._changed_feeds = {"changed"}
+    service._commit()
+    assert set(store.feed_status()) == {"changed"}
+    service._read_feeds.add("reads-only")
+    service._commit(force=True)
+    assert set(store.feed_status()) == {"changed", "reads-only"}
+    assert store.feed_status()["reads-only"].last_value == 40.0
+    store.close()

@@ -211,7 +211,8 @@ class Service(FeedReports, Refits):
         self._last_beat = float("-inf")
         self._last_shelving_read = float("-inf")
         self._shelved: dict[str, datetime] = {}
-        self._changed_feeds: set[str] = set()
+        # status rows: feeds whose state changed (next commit), feeds with readings only (status_interval_s)
+        self._changed_feeds, self._read_feeds, self._last_status = set(), set(), 0.0
         #: The source name and the unit each feed was last seen with.
         self.feed_sources: dict[str, str] = {}
         self.feed_units: dict[str, str] = {}
@@ -335,7 +336,7 @@ class Service(FeedReports, Refits):
                 if unit:
                     self.feed_units.setdefault(reading.feed_id, unit)
             self._take(reading)
-            self._changed_feeds.add(reading.feed_id)
+            self._read_feeds.add(reading.feed_id)
             self.feed_sources[reading.feed_id] = source.name
         take_units = getattr(source, "take_units", None)  # optional: sources that carry units (SenML "u")
         if callable(take_units):
@@ -422,7 +423,7 @@ class Service(FeedReports, Refits):
         backoff = self.store_backoff
         if not (force or backoff.ready()):
             return
-        self._stage_feed_status()
+        self._stage_feed_status(force)
         try:
             self.store.flush()
         except StoreError as exc:
