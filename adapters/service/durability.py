@@ -4,9 +4,10 @@ The service journals every reading it hands to the engine (feed, reading
 time, value; :mod:`leadline.adapters.store.journal`) in the store's flush,
 the SAME transaction as the events and the CSV offsets, before the MQTT
 acknowledgements. Every ``snapshot_interval_s`` (or after
-``snapshot_every_readings`` journaled readings) it stages a snapshot of each
-watching feed that has no fit in flight, with the journal position it
-covers. At start, :meth:`Durability.recover` restores the snapshots and
+``snapshot_every_readings`` journaled readings) it stages a snapshot of the
+watching feeds that have no fit in flight and new readings since their last
+snapshot (at most ``snapshot_max_feeds`` a round, the longest unsnapshotted
+first; every one at shutdown), each with the journal position it covers. At start, :meth:`Durability.recover` restores the snapshots and
 hands back the journal rows after each feed's position, which the service
 replays through the engine: events upsert on their key, so a replay of
 what was already committed changes nothing. A feed still learning or
