@@ -73,9 +73,6 @@ class StepHistory:
         order = (np.arange(self._len) + start) % cap
         return list(zip(self._z[order].tolist(), self._std[order].tolist(), self._absorbed[order].tolist()))
 
-    def __iter__(self):
-        return iter(self.rows())
-
 
 def _row(row: Any) -> tuple[float, float, bool]:
     """One saved row (JSON nulls for NaN) as (z, std, absorbed)."""
