@@ -119,6 +119,16 @@ class InnovationDiagnostics:
             self.z.append(c if z > c else (-c if z < -c else z))
             self.since_check += 1
 
+    def add_absorbed(self, z: np.ndarray) -> None:
+        """Many absorbed innovations' finite z at once (as :meth:`add` one by one)."""
+        c = DIAGNOSTICS_CLIP_ABS_Z
+        self.z.extend(np.clip(np.asarray(z, dtype=float), -c, c))
+        self.since_check += int(np.size(z))
+
+    def steps_to_due(self) -> int:
+        """How many more :meth:`add` calls make :attr:`due` true (at least 1)."""
+        return max(DIAGNOSTICS_WINDOW - len(self.z), DIAGNOSTICS_EVERY - self.since_check, 1)
+
     @property
     def due(self) -> bool:
         return len(self.z) >= DIAGNOSTICS_WINDOW and self.since_check >= DIAGNOSTICS_EVERY

@@ -125,6 +125,18 @@ class _Ring:
         if self.size < self.capacity:
             self.size += 1
 
+    def extend(self, rows: np.ndarray) -> None:
+        """Many slots, oldest first (an (n, 5) array): as :meth:`append` row by row."""
+        n = rows.shape[0]
+        if n == 0:
+            return
+        if n > self.capacity:
+            rows, n = rows[-self.capacity:], self.capacity
+        flat = np.frombuffer(self.data, dtype=float).reshape(self.capacity, len(FIELDS))
+        flat[(self.head + np.arange(n)) % self.capacity] = rows
+        self.head = (self.head + n) % self.capacity
+        self.size = min(self.size + n, self.capacity)
+
     def rows(self) -> np.ndarray:
         """The kept slots, oldest first (a copy)."""
         flat = np.frombuffer(self.data, dtype=float).reshape(self.capacity, len(FIELDS))
@@ -276,6 +288,20 @@ class EvidenceRecorder:
             if cap.end_s is not None and cap.after >= self.after_slots:
                 done.append(captures.pop(key).record(complete=True))
         return done
+
+    def slots(self, feed_id: str, rows: np.ndarray) -> list[EvidenceRecord]:
+        """Many scored slots of one feed with no event among them (an (n, 5) array of
+        :data:`FIELDS`, oldest first): as :meth:`slot` row by row."""
+        if self._captures.get(feed_id):
+            done: list[EvidenceRecord] = []
+            for row in np.asarray(rows, dtype=float).tolist():
+                done.extend(self.slot(feed_id, *row))
+            return done
+        ring = self._rings.get(feed_id)
+        if ring is None:
+            ring = self._rings[feed_id] = _Ring(self.before_slots + RING_SLACK)
+        ring.extend(np.asarray(rows, dtype=float))
+        return []
 
     def event(self, event: AlarmEvent) -> list[EvidenceRecord]:
         """An onset or clearing; returns a record finished by it (a clearing

@@ -125,6 +125,26 @@ class GridCursor:
         self.next_slot = slot + 1
         return slot
 
+    def _run_offsets(self, epoch_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        position = (np.asarray(epoch_s, dtype=float) - self.origin_epoch_s) / self.interval_s
+        slot = np.floor(position + 0.5)
+        return slot, np.abs(position - slot)
+
+    def run_length(self, epoch_s: np.ndarray) -> int:
+        """How many of ``epoch_s`` (in order) would fill the next slots one after another, each
+        within the tolerance, as :meth:`place` would place them. Nothing is placed."""
+        slot, offset = self._run_offsets(epoch_s)
+        fits = (offset <= self.tolerance) & (slot == self.next_slot + np.arange(slot.size))
+        return int(slot.size if fits.all() else np.argmin(fits))
+
+    def place_run(self, epoch_s: np.ndarray) -> None:
+        """Place readings that :meth:`run_length` found to fill the next slots: the counts and
+        ``next_slot`` as :meth:`place` one by one leaves them."""
+        _, offset = self._run_offsets(epoch_s)
+        self.counts.snapped += int(np.count_nonzero(offset > SNAP_NOTICE_FRACTION))
+        self.counts.placed += int(offset.size)
+        self.next_slot += int(offset.size)
+
 
 def to_grid(epoch_s, values, interval_s: float | None = None, origin_epoch_s: float | None = None,
             tolerance: float = 0.25) -> GridSeries:

@@ -109,8 +109,41 @@ class RingBuffer:
             self._start = (self._start + 1) % cap
 
     def extend(self, values: Any) -> None:
-        for value in np.asarray(values, dtype=float).ravel().tolist():
-            self.append(value)
+        """Keep many values, oldest first: the same stored values as :meth:`append` one by one.
+
+        Each value is stored as ``value - reference`` computed in float64 and
+        then cast to the ring's dtype, exactly as :meth:`append` does.
+        """
+        x = np.asarray(values, dtype=float).ravel()
+        if x.size == 0:
+            return
+        if not self._anchored:
+            finite = np.flatnonzero(np.isfinite(x))
+            if finite.size == 0 or finite[0] > 0:
+                # values before the first finite one are stored against no reference, as append does
+                head = x if finite.size == 0 else x[:finite[0]]
+                for value in head.tolist():
+                    self.append(value)
+                if finite.size == 0:
+                    return
+                x = x[finite[0]:]
+            self.reference = float(x[0])
+            self._anchored = True
+        if self._data is None:
+            self._allocate()
+        cap = self._capacity
+        if x.size >= cap:
+            self._data[:] = x[-cap:] - self.reference
+            self._start, self._len = 0, cap
+            return
+        stored = x - self.reference
+        first = (self._start + self._len) % cap
+        room = min(stored.size, cap - first)
+        self._data[first:first + room] = stored[:room]
+        self._data[:stored.size - room] = stored[room:]
+        overflow = max(self._len + stored.size - cap, 0)
+        self._len = min(self._len + stored.size, cap)
+        self._start = (self._start + overflow) % cap
 
     def stored(self) -> np.ndarray:
         """The stored values (departures from the reference), oldest first, in the ring's dtype (a copy)."""

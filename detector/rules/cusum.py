@@ -194,6 +194,18 @@ class TabularCusum:
         self._held = None
         self._start_hi = self._start_lo = self._calls + 1
 
+    def run_state(self) -> tuple[float, float, int, int, int, int, int]:
+        """``(S+, S-, N+, N-, start+, start-, calls)``, for a caller that steps the sums itself
+        exactly as :meth:`_add` does (the replay's quiet runs); see :meth:`resume`."""
+        return (self._s_hi, self._s_lo, self._n_hi, self._n_lo, self._start_hi, self._start_lo, self._calls)
+
+    def resume(self, state: tuple[float, float, int, int, int, int, int]) -> None:
+        """Take back a :meth:`run_state` advanced by finite, unscreened z with no signal."""
+        if self._held is not None:
+            raise RuleError("cusum: a run state cannot be resumed while a reading is held back")
+        (self._s_hi, self._s_lo, self._n_hi, self._n_lo, self._start_hi, self._start_lo,
+         self._calls) = state
+
     def _add(self, z: float, call: int) -> None:
         # the scalar form of cusum_step, with the run counters N+ and N-
         c = self.clip_abs_z

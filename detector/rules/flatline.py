@@ -185,6 +185,15 @@ class FlatlineRule(RuleBase):
         log_p = state["log_run_probability"]
         self._log_p = -math.inf if log_p is None else float(log_p)
 
+    def run_state(self) -> tuple[float | None, int, float]:
+        """``(previous reading, run steps, log P)``, for a caller that judges repeats itself
+        exactly as :meth:`assess` does (the replay's quiet runs); see :meth:`resume`."""
+        return self._previous, self._run, self._log_p
+
+    def resume(self, state: tuple[float | None, int, float]) -> None:
+        """Take back a :meth:`run_state` advanced with no alarm."""
+        self._previous, self._run, self._log_p = state
+
     def assess(self, innovation: Innovation) -> Assessment | None:
         """Judge one reading against the previous one; None for a missing reading."""
         y = innovation.value

@@ -165,6 +165,24 @@ class LevelCondition:
         if self._level_before is not None:
             self._judge()
 
+    def observe_many(self, values: Any) -> None:
+        """Keep many finite readings, oldest first, while no episode is tracked (the same ring as
+        :meth:`observe` one by one); while tracking, each is judged as it comes."""
+        x = np.asarray(values, dtype=float).ravel()
+        x = x[np.isfinite(x)]
+        if self._level_before is not None:
+            for value in x.tolist():
+                self.observe(value)
+            return
+        cap = self._ring.size
+        if x.size == 0:
+            return
+        if x.size > cap:
+            x = x[-cap:]
+        self._ring[(self._pos + np.arange(x.size)) % cap] = x
+        self._pos = (self._pos + x.size) % cap
+        self._count = min(self._count + x.size, cap)
+
     def start(self, run_steps: int) -> None:
         """An episode opened whose run began ``run_steps`` readings ago: freeze the level before it.
 

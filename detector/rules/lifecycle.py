@@ -221,6 +221,13 @@ class AlarmLifecycle:
             self._clear_count = 0
         return []
 
+    def pass_quiet(self, steps: int) -> None:
+        """``steps`` steps with assessments of no severity while no episode is open: the same
+        state as :meth:`step` called that many times (the on-delay window takes the steps)."""
+        if self._event is not None:
+            raise RuleError(f"rule {self.rule!r} on {self.feed_id!r}: quiet steps need no open episode")
+        self._window.append_clear(steps)
+
     def close(self, when: datetime, detail: str | None = None) -> AlarmEvent:
         """Return the open episode to normal now and give its cleared event.
 
@@ -317,6 +324,12 @@ class _OnDelayWindow:
     def append(self, flag: bool) -> None:
         self._bits = ((self._bits << 1) | int(flag)) & ((1 << self._n) - 1)
         self._count = min(self._count + 1, self._n)
+
+    def append_clear(self, count: int) -> None:
+        """``count`` normal assessments in a row (as many ``append(False)``)."""
+        if count > 0:
+            self._bits = (self._bits << min(count, self._n)) & ((1 << self._n) - 1)
+            self._count = min(self._count + count, self._n)
 
     @property
     def hits(self) -> int:

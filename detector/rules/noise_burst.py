@@ -270,6 +270,44 @@ class NoiseBurstRule(RuleBase):
         self._last_valid = valid[-1] if valid else None
         self._q = successive_difference_statistic(valid)
 
+    def _clipped(self, z: Any) -> np.ndarray:
+        z = np.asarray(z, dtype=float).ravel()
+        c = self.clip_abs_z
+        return z if c is None else np.clip(z, -c, c)
+
+    def quiet_run_length(self, z: Any) -> int:
+        """How many of the next ``z`` (finite, below the screen) keep Q_t under its raise limit.
+
+        Q_t is computed for every step at once from cumulative sums, which
+        round differently from the rule's exact sum; a step within 1e-9 of
+        its limit counts as reaching it, so that the caller leaves it to
+        :meth:`assess`.
+        """
+        new = self._clipped(z)
+        if new.size == 0:
+            return 0
+        old = np.array([math.nan if v is None else v for v in self._values], dtype=float)
+        x = np.concatenate([old, new])
+        valid = np.flatnonzero(np.isfinite(x))
+        squares = np.zeros(x.size)
+        squares[valid[1:]] = (x[valid[1:]] - x[valid[:-1]]) ** 2
+        total = np.cumsum(squares)
+        counted = np.concatenate([[0], np.cumsum(np.isfinite(x))])
+        end = old.size + np.arange(new.size)
+        start = np.maximum(end - self.window + 1, 0)
+        n = counted[end + 1] - counted[start]
+        first = valid[np.searchsorted(valid, start)]
+        q = 0.5 * (total[end] - total[first])
+        limit = np.asarray(self._raise)[n]
+        reaches = (n >= self.min_valid) & (q > limit * (1.0 - 1e-9))
+        return int(new.size if not reaches.any() else np.argmax(reaches))
+
+    def extend_quiet(self, z: Any) -> None:
+        """Take many z that :meth:`quiet_run_length` passed: the window as :meth:`assess` leaves it."""
+        values = list(self._values) + self._clipped(z)[-self.window:].tolist()
+        self._values = deque(values[-self.window:])
+        self._recount()
+
     def assess(self, innovation: Innovation) -> Assessment | None:
         z = innovation.z
         if not math.isfinite(z):

@@ -66,6 +66,24 @@ class StepHistory:
         if self._len < self._z.size:
             self._len += 1
 
+    def extend(self, z: Any, std: Any, absorbed: bool) -> None:
+        """Keep many steps, oldest first (``std`` and ``absorbed`` may be one value for all)."""
+        z = np.asarray(z, dtype=float).ravel()
+        n = z.size
+        if n == 0:
+            return
+        std = np.broadcast_to(np.asarray(std, dtype=float), (n,))
+        flags = np.broadcast_to(np.asarray(absorbed, dtype=bool), (n,))
+        cap = self._z.size
+        if n > cap:
+            z, std, flags, n = z[-cap:], std[-cap:], flags[-cap:], cap
+        index = (self._next + np.arange(n)) % cap
+        self._z[index] = z
+        self._std[index] = std
+        self._absorbed[index] = flags
+        self._next = (self._next + n) % cap
+        self._len = min(self._len + n, cap)
+
     def rows(self) -> list[tuple[float, float, bool]]:
         """The steps kept, oldest first, as ``(z, std, absorbed)`` tuples of Python floats and bools."""
         cap = self._z.size

@@ -1,0 +1,315 @@
+"""Advance a watching feed over a run of quiet readings at once: the replay's fast path.
+
+Most readings of a healthy feed change nothing but numbers: the filter
+steps, the CUSUM sums move below h, the noise-burst window slides, and no
+rule's state machine moves. :func:`advance_quiet` takes such a run of
+readings of one feed (in order, from a history) and leaves the feed
+exactly as :meth:`FeedLifecycle.process <leadline.detector.feed.FeedLifecycle.process>`
+called reading by reading would have left it, at a fraction of the cost:
+
+* the filter, the CUSUM sums and the flatline run are stepped in one tight
+  loop over plain floats, with the same operations in the same order as the
+  per-reading path (:meth:`Stream.update <leadline.detector.stream.Stream.update>`'s
+  steady step, :meth:`TabularCusum._add`, :meth:`FlatlineRule.assess`), so
+  their values are bit for bit the same;
+* everything else is done on arrays: the grid placement, the future-reading
+  and stale checks, the range check, the noise-burst statistic (a
+  conservative check; the window is then rebuilt exactly), the rings of the
+  refit window, the diagnostics, the re-anchoring history, the level
+  condition and the lifecycles' on-delay windows.
+
+The run stops *before* the first reading at which anything could happen
+(a |z| at the spike warning or insulation level, a CUSUM signal, a flatline
+alarm, a noise-burst statistic within 1e-9 of its limit, a reading off the
+next grid slot, missing, out of range or ahead of the clock, a gap the stale
+rule would see) and after the first reading at which the feed would ask for
+a refit (a scheduled refit or a diagnostics check falls due); the caller
+hands the next reading to the per-reading path. The feed must be watching
+with a steady-state filter, no refit in flight, no episode open and none of
+the rules this path does not cover (EWMA, drift) configured; otherwise
+:func:`advance_quiet` returns None and changes nothing.
+
+Its equality with the per-reading path is tested state for state
+(the checkpoint bytes) and event for event in ``tests/test_quiet_run.py``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from typing import Any
+
+import numpy as np
+
+from .engine_output import EngineOutput
+from .innovation import Innovation
+from .rules.flatline import repeat_probability
+
+__all__ = ["QuietRun", "advance_quiet", "MAX_RUN", "COVERED_RULES"]
+
+#: Most readings taken in one run (bounds the arrays of one call).
+MAX_RUN = 4096
+#: Fewest readings worth a run: below this the per-reading path is as quick.
+MIN_RUN = 4
+#: The rules a quiet run covers; a feed with any other rule is left to the per-reading path.
+COVERED_RULES = frozenset({"spike", "cusum", "noise_burst", "flatline", "range", "stale"})
+#: Margin (seconds) kept from the stale and future limits, which the per-reading path
+#: compares on microsecond datetimes: a gap this close to a limit is left to it.
+_TIME_MARGIN_S = 1e-3
+
+
+@dataclass
+class QuietRun:
+    """What one quiet run did.
+
+    Attributes
+    ----------
+    count : int
+        Readings taken.
+    rows : ndarray, shape (count, 5)
+        The scored slots as evidence rows (epoch_s, value, forecast, lower,
+        upper), for :meth:`EvidenceRecorder.slots <leadline.detector.evidence.EvidenceRecorder.slots>`.
+    output : EngineOutput
+        What the last reading produced: a refit request at most, no events.
+    """
+
+    count: int
+    rows: np.ndarray
+    output: EngineOutput
+
+
+def _utc(epoch_s: float) -> datetime:
+    return datetime.fromtimestamp(float(epoch_s), tz=timezone.utc)
+
+
+def _covered(feed: Any) -> bool:
+    """Whether the feed is in a state a quiet run can start from."""
+    if feed.state != "watching" or feed.pending is not None or feed.refit_due is not None \
+            or feed.counter is not None or feed.monitor is None:
+        return False
+    mon = feed.monitor
+    stream = mon.stream
+    if not stream.is_steady or stream.regression is not None:
+        return False
+    if not COVERED_RULES.issuperset(mon.rules):
+        return False
+    if mon._settle is not None or mon._unconfirmed is not None or mon._shock_candidate is not None:
+        return False
+    if any(life.is_active for life in mon.lifecycles.values()):
+        return False
+    if mon.level.tracking or (mon.cusum is not None and mon.cusum.cusum.holding):
+        return False
+    return True
+
+
+def _limit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np.ndarray) -> int:
+    """The longest run the array checks allow (before the loop's own checks)."""
+    mon = feed.monitor
+    n = values.size
+    ok = np.isfinite(values)
+    rng = mon.range
+    if rng is not None:
+        if rng.low is not None:
+            ok &= values >= rng.low
+        if rng.high is not None:
+            ok &= values <= rng.high
+    tolerance = feed.settings.future_tolerance_s
+    if tolerance is not None:
+        ok &= ~(epoch_s - clock_epoch_s > tolerance)  # NaN clock: no clock yet, nothing is ahead of it
+    count = n if ok.all() else int(np.argmin(ok))
+    count = min(count, feed.cursor.run_length(epoch_s[:count]))
+    stale = mon.stale
+    if stale is not None and count:
+        timeout_s = stale.timeout.total_seconds()
+        if stale.last_seen is None:
+            return 0
+        gaps = np.diff(np.concatenate([[stale.last_seen.timestamp()], epoch_s[:count]]))
+        fine = (gaps > _TIME_MARGIN_S) & (gaps < timeout_s - _TIME_MARGIN_S)
+        count = count if fine.all() else int(np.argmin(fine))
+        if stale.last_tick is not None and count and \
+                stale.last_tick.timestamp() - epoch_s[0] > timeout_s - _TIME_MARGIN_S:
+            return 0
+    settings = feed.settings
+    if settings.diagnostics_refit:
+        count = min(count, feed.diagnostics.steps_to_due())
+    if settings.refit_every_s is not None and feed.next_refit_epoch_s is not None and count:
+        cursor = feed.cursor
+        slots = feed.next_slot + np.arange(count)
+        due = np.flatnonzero(cursor.origin_epoch_s + slots * cursor.interval_s >= feed.next_refit_epoch_s)
+        if due.size:
+            count = int(due[0]) + 1
+    return count
+
+
+def _scan(mon: Any, values: list[float], count: int, z_limit: float) -> tuple[int, tuple, list, list, tuple, tuple]:
+    """Step the filter, the CUSUM and the flatline run over up to ``count`` readings.
+
+    Stops before the first reading with |z| >= ``z_limit``, a CUSUM signal or
+    a flatline alarm. Returns (readings taken, the filter's state, forecasts,
+    z, the CUSUM's run state, the flatline's run state).
+    """
+    stream = mon.stream
+    step_fn, gain, d = stream._step_fn, stream._gain, stream._d_const
+    sqrt_f = stream._sqrtF_ss
+    a = stream._a_tuple
+    t0 = stream.step
+    cusum = mon.cusum.cusum if mon.cusum is not None else None
+    if cusum is not None:
+        s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls = cusum.run_state()
+        k, h, clip = cusum.k, cusum.h, cusum.clip_abs_z
+    flat = mon.rules.get("flatline")
+    if flat is not None:
+        previous, run, log_p = flat.run_state()
+        tol, half, habits, log_limit = flat.tolerance, flat.half_width, flat.habits, flat._log_limit
+    forecasts: list[float] = []
+    zs: list[float] = []
+    taken = 0
+    for j in range(count):
+        y = values[j]
+        f, v, a_next = step_fn(a, gain, y, d, t0 + j)
+        z = v / sqrt_f
+        if not -z_limit < z < z_limit:
+            break
+        if cusum is not None:
+            call = calls + 1
+            zc = z if clip is None else (clip if z > clip else (-clip if z < -clip else z))
+            new_start_hi = call if s_hi == 0.0 else start_hi
+            new_start_lo = call if s_lo == 0.0 else start_lo
+            new_hi = max(0.0, s_hi + zc - k)
+            new_lo = max(0.0, s_lo - zc - k)
+            if new_hi > h or new_lo > h:
+                break
+        if flat is not None:
+            if previous is None or abs(y - previous) > tol:
+                new_run, new_log_p = 0, 0.0
+            else:
+                p = repeat_probability(previous, f, sqrt_f, half)
+                habitual_run = 0
+                if habits is not None:
+                    p = max(p, habits.probability(previous))
+                    habitual_run = habits.longest_run(previous)
+                new_run = run + 1
+                new_log_p = log_p + (math.log(p) if p > 0 else -math.inf)
+                if new_log_p < log_limit and new_run > habitual_run:
+                    break
+            previous, run, log_p = y, new_run, new_log_p
+        if cusum is not None:
+            calls = call
+            start_hi, start_lo = new_start_hi, new_start_lo
+            s_hi, s_lo = new_hi, new_lo
+            n_hi = n_hi + 1 if s_hi > 0 else 0
+            n_lo = n_lo + 1 if s_lo > 0 else 0
+        a = a_next
+        forecasts.append(f)
+        zs.append(z)
+        taken += 1
+    cusum_state = (s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls) if cusum is not None else ()
+    flat_state = (previous, run, log_p) if flat is not None else ()
+    return taken, a, forecasts, zs, cusum_state, flat_state
+
+
+def _z_limit(mon: Any) -> float:
+    """The |z| at which a reading stops being quiet: insulation, the spike warning, the screens."""
+    limit = mon.insulation_abs_z if mon.config.insulate_outliers else math.inf
+    if "spike" in mon.rules:
+        limit = min(limit, mon.spike.warning_abs_z)
+    if mon.cusum is not None and mon.cusum.cusum.screen_abs_z is not None:
+        limit = min(limit, mon.cusum.cusum.screen_abs_z)
+    burst = mon.noise_burst
+    if burst is not None and burst.screen_abs_z is not None:
+        limit = min(limit, burst.screen_abs_z)
+    return limit
+
+
+def advance_quiet(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np.ndarray) -> QuietRun | None:
+    """Take the quiet readings at the head of ``epoch_s``/``values`` (see the module docstring).
+
+    Parameters
+    ----------
+    feed : FeedLifecycle
+    epoch_s, values : ndarray
+        The feed's next readings, in order (UTC seconds since the epoch,
+        readings), at most :data:`MAX_RUN` are looked at.
+    clock_epoch_s : ndarray
+        The engine's clock when each reading arrives (NaN: no clock yet), for
+        the future-reading check.
+
+    Returns
+    -------
+    QuietRun or None
+        None when no run of at least :data:`MIN_RUN` readings can be taken;
+        the feed is then unchanged.
+    """
+    if not _covered(feed):
+        return None
+    epoch_s = np.asarray(epoch_s[:MAX_RUN], dtype=float)
+    values = np.asarray(values[:MAX_RUN], dtype=float)
+    clock_epoch_s = np.asarray(clock_epoch_s[:MAX_RUN], dtype=float)
+    count = _limit(feed, epoch_s, values, clock_epoch_s)
+    if count < MIN_RUN:
+        return None
+    mon = feed.monitor
+    z_limit = _z_limit(mon)
+    ys = values[:count].tolist()
+    scanned = _scan(mon, ys, count, z_limit)
+    taken = scanned[0]
+    if mon.noise_burst is not None and taken:
+        burst_ok = mon.noise_burst.quiet_run_length(scanned[3])
+        if burst_ok < taken:
+            scanned = _scan(mon, ys, burst_ok, z_limit)
+            taken = scanned[0]
+    if taken < MIN_RUN:
+        return None
+    return _commit(feed, epoch_s[:taken], values[:taken], scanned)
+
+
+def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple) -> QuietRun:
+    """Leave the feed as the per-reading path leaves it after these readings."""
+    taken, a, forecasts, zs, cusum_state, flat_state = scanned
+    mon = feed.monitor
+    stream = mon.stream
+    last_time = _utc(epoch_s[-1])
+    last_value = float(values[-1])
+    z = np.asarray(zs)
+    forecast = np.asarray(forecasts)
+    # the stream: its steady state moved on
+    f = forecasts[-1]
+    last = Innovation(stream.step + taken - 1, last_value, f, last_value - f, stream._F_ss, zs[-1],
+                      f - stream._halfwidth_ss, f + stream._halfwidth_ss, stream.level, True, last_time)
+    stream._a_tuple = a
+    stream._t += taken
+    # the monitor and its rules
+    mon.readings += taken
+    if mon.stale is not None:
+        mon.stale.last_seen = last_time
+    mon.level.observe_many(values)
+    mon._shock_candidate = None
+    mon._last_absorbed = True
+    mon._history.extend(z, stream._sqrtF_ss, True)
+    mon._steps += taken
+    mon.last_innovation = last
+    for life in mon.lifecycles.values():
+        if life.rule != "stale":
+            life.pass_quiet(taken)
+    if mon.cusum is not None:
+        mon.cusum.cusum.resume(cusum_state)
+        mon.cusum.last_signal = None
+    if mon.noise_burst is not None:
+        mon.noise_burst.extend_quiet(z)
+    flat = mon.rules.get("flatline")
+    if flat is not None:
+        flat.resume(flat_state)
+    # the feed: grid, counts, refit window, diagnostics
+    feed.readings += taken
+    feed.last_time, feed.last_value, feed.last_seen = last_time, last_value, last_time
+    feed.cursor.place_run(epoch_s)
+    last_slot = feed.next_slot + taken - 1
+    feed.next_slot += taken
+    feed.history.extend(values - stream.level_offset)
+    feed.diagnostics.add_absorbed(z)
+    out = EngineOutput()
+    feed._maybe_refit(last_slot, out)
+    half = stream._halfwidth_ss
+    rows = np.column_stack([epoch_s, values, forecast, forecast - half, forecast + half])
+    return QuietRun(taken, rows, feed.tag_events(out))
