@@ -45,9 +45,11 @@ in statsmodels' ``acorr_ljungbox``.
 from __future__ import annotations
 
 import math
+from typing import Callable
 
 import numpy as np
-from scipy.stats import chi2, norm
+from scipy.special import chdtrc
+from scipy.stats import norm
 
 from .innovation import Innovation
 from .ring import RingBuffer
@@ -100,7 +102,7 @@ def ljung_box_pvalue(x: np.ndarray, lag: int, model_df: int = 0) -> float:
         return math.nan
     r = np.array([float(d[j:] @ d[:-j]) / denom for j in range(1, lag + 1)])
     q = n * (n + 2) * float(np.sum(r * r / (n - np.arange(1, lag + 1))))
-    return float(chi2.sf(q, lag - model_df))
+    return float(chdtrc(lag - model_df, q))  # chi2.sf(q, df) is this function, without scipy.stats' overhead
 
 
 class InnovationDiagnostics:
@@ -139,17 +141,53 @@ class InnovationDiagnostics:
     def check(self) -> str | None:
         """Judge the window now; a one-line reason when the fit has degraded, else None."""
         self.since_check = 0
-        z = self.z.to_array()
+        verdict, self.last = self._judge(self.z.to_array())
+        return verdict
+
+    def _judge(self, z: np.ndarray) -> tuple[str | None, dict[str, float]]:
         ratio = float(np.mean(z * z)) / self._expected
         p = ljung_box_pvalue(z, LJUNG_BOX_LAG)
-        self.last = {"variance_ratio": float(ratio), "ljung_box_p": float(p)}
+        last = {"variance_ratio": float(ratio), "ljung_box_p": float(p)}
         if ratio > VARIANCE_RATIO_LIMIT:
             return (f"innovation variance {ratio:.2f} times the model's over the last {z.size} readings "
-                    f"(limit {VARIANCE_RATIO_LIMIT:g})")
+                    f"(limit {VARIANCE_RATIO_LIMIT:g})"), last
         if math.isfinite(p) and p < REFIT_LJUNG_BOX_ALPHA:
             return (f"innovations autocorrelated over the last {z.size} readings "
-                    f"(Ljung-Box p = {p:.2g} at lag {LJUNG_BOX_LAG})")
-        return None
+                    f"(Ljung-Box p = {p:.2g} at lag {LJUNG_BOX_LAG})"), last
+        return None, last
+
+    def checks_ahead(self, z: np.ndarray, skipped: Callable[[int], bool]) -> tuple[int | None, int, dict | None]:
+        """The checks that adding ``z`` (absorbed, finite) one by one would make due, judged
+        without changing anything: each after the ``count``-th addition, ``count < z.size``,
+        either skipped (``skipped(count)``: the feed refitted on diagnostics too recently)
+        or judged on the window as it would stand then.
+
+        Returns
+        -------
+        (count, since_check, last)
+            The count after which a check finds the fit degraded (None if none
+            does), and :attr:`since_check` and :attr:`last` as they would be
+            after all of ``z`` (up to that count, when one did).
+        """
+        z = np.asarray(z, dtype=float)
+        c = DIAGNOSTICS_CLIP_ABS_Z
+        clipped = np.clip(z, -c, c)
+        ring = RingBuffer.from_stored(DIAGNOSTICS_WINDOW, self.z.stored(), self.z.saved_reference, np.float32)
+        since, last, done = self.since_check, self.last, 0
+        for count in range(self.steps_to_due(), z.size, DIAGNOSTICS_EVERY):
+            ring.extend(clipped[done:count])
+            since, done = 0, count
+            if skipped(count):
+                continue
+            verdict, last = self._judge(ring.to_array())
+            if verdict is not None:
+                return count, since, last
+        return None, since + z.size - done, last
+
+    def take_checked(self, z: np.ndarray, since_check: int, last: dict | None) -> None:
+        """Add ``z`` as :meth:`checks_ahead` walked them, taking its ``since_check`` and ``last``."""
+        self.add_absorbed(z)
+        self.since_check, self.last = since_check, last
 
     def reset(self) -> None:
         self.z.clear()

@@ -23,7 +23,8 @@ The run stops *before* the first reading at which anything could happen
 alarm, a noise-burst statistic within 1e-9 of its limit, a reading off the
 next grid slot, missing, out of range or ahead of the clock, a gap the stale
 rule would see) and after the first reading at which the feed would ask for
-a refit (a scheduled refit or a diagnostics check falls due); the caller
+a refit (a scheduled refit falls due, or a diagnostics check finds the fit
+degraded; the checks that find nothing are made inside the run); the caller
 hands the next reading to the per-reading path. The feed must be watching
 with a steady-state filter, no refit in flight, no episode open and none of
 the rules this path does not cover (EWMA, drift) configured; otherwise
@@ -131,8 +132,6 @@ def _limit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np
                 stale.last_tick.timestamp() - epoch_s[0] > timeout_s - _TIME_MARGIN_S:
             return 0
     settings = feed.settings
-    if settings.diagnostics_refit:
-        count = min(count, feed.diagnostics.steps_to_due())
     if settings.refit_every_s is not None and feed.next_refit_epoch_s is not None and count:
         cursor = feed.cursor
         slots = feed.next_slot + np.arange(count)
@@ -259,12 +258,32 @@ def advance_quiet(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoc
         if burst_ok < taken:
             scanned = _scan(mon, ys, burst_ok, z_limit)
             taken = scanned[0]
+    checks = None
+    if feed.settings.diagnostics_refit and taken:
+        checks = _diagnostics_ahead(feed, scanned[3])
+        if checks[0] is not None:  # a check falls due and finds the fit degraded: end the run there
+            scanned = _scan(mon, ys, checks[0], z_limit)
+            taken = scanned[0]
+            checks = _diagnostics_ahead(feed, scanned[3])
     if taken < MIN_RUN:
         return None
-    return _commit(feed, epoch_s[:taken], values[:taken], scanned)
+    return _commit(feed, epoch_s[:taken], values[:taken], scanned, checks)
 
 
-def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple) -> QuietRun:
+def _diagnostics_ahead(feed: Any, zs: list[float]) -> tuple[int | None, int, dict | None]:
+    """The diagnostics checks falling due inside the run, as :meth:`FeedLifecycle._maybe_refit`
+    makes them: skipped within a refit window of the last diagnostics refit, else judged."""
+    first_slot, last_diag = feed.next_slot, feed.last_diag_refit_slot
+    window = feed.settings.refit_window_points
+
+    def skipped(count: int) -> bool:
+        return last_diag is not None and first_slot + count - 1 - last_diag < window
+
+    return feed.diagnostics.checks_ahead(np.asarray(zs), skipped)
+
+
+def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple,
+            checks: tuple[int | None, int, dict | None] | None) -> QuietRun:
     """Leave the feed as the per-reading path leaves it after these readings."""
     taken, a, forecasts, zs, cusum_state, flat_state = scanned
     mon = feed.monitor
@@ -307,7 +326,10 @@ def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple) 
     last_slot = feed.next_slot + taken - 1
     feed.next_slot += taken
     feed.history.extend(values - stream.level_offset)
-    feed.diagnostics.add_absorbed(z)
+    if checks is None:
+        feed.diagnostics.add_absorbed(z)
+    else:
+        feed.diagnostics.take_checked(z, checks[1], checks[2])
     out = EngineOutput()
     feed._maybe_refit(last_slot, out)
     half = stream._halfwidth_ss

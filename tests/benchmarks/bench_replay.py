@@ -1,23 +1,26 @@
-"""Replay speed and memory: ``leadline replay`` (1 and 2 workers) against the engine driven reading by reading.
+"""Replay speed and memory: the fast path (quiet runs) against the per-reading engine, in one run.
 
-Run: ``python tests/benchmarks/bench_replay.py [--feeds 1000] [--days 30] [--quick]``
+Run: ``python tests/benchmarks/bench_replay.py [--feeds 1000] [--days 30] [--sample 50] [--quick]``
 
 Writes N invented feeds x D days of one-minute readings (seeded AR(1), the
 Heronsgate district, one long-layout CSV file in time order) and a config
 with a fixed AR(1) model, sigma limits, the default learning window of 2,000
 readings and a daily refit. Then, in one run, times:
 
-* ``engine``: the per-reading engine as ``leadline run --replay`` drives it
-  (the service loop: the CSV follower, ``Engine.process`` per reading,
-  ticks, refits inline, staging in a SQLite store) until the file is read;
-* ``replay w=1`` and ``replay w=2``: :func:`leadline.adapters.replay` (read
-  the history, run the feed groups, write the store), 1 and 2 processes;
+* ``per-reading`` and ``fast``: :func:`~leadline.adapters.replay.runner.replay_group`
+  on the same ``--sample`` feeds with ``fast=False`` (every reading through
+  ``Engine.process``, the ticks of the merged history) and ``fast=True``
+  (feed by feed, quiet runs taken at once), each fit timed on its own, so
+  that the engine's share (the whole less the fits, which cost the same on
+  both paths) is printed beside the whole;
+* ``replay w=1`` and ``replay w=2``: :func:`leadline.adapters.replay.session.run_replay`
+  over all N feeds (the fast path), 1 and 2 processes, after the history is read;
+* the history read (CSV parsing) on its own.
 
-and prints readings/s and the ratio to ``engine``. Memory: the tracemalloc
-peak of the one-process replay (history read, run and results, not the
-store write) and the growth of the resident set size, less the bytes of the
-history arrays, per 1,000 feeds. Fits cost the same on every path; the
-engine's per-reading cost is the rest.
+Memory: the tracemalloc peak of the one-process replay (history read, run
+and results, not the store write) and the growth of the resident set size,
+less the bytes of the history arrays, per 1,000 feeds (the slope between
+half the feeds and all of them).
 """
 
 from __future__ import annotations
@@ -38,9 +41,10 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 import numpy as np  # noqa: E402
 
 from leadline.adapters.config.file import load_config  # noqa: E402
+from leadline.adapters.replay.runner import replay_group  # noqa: E402
 from leadline.adapters.replay.session import history_for, replay_settings, run_replay  # noqa: E402
 from leadline.adapters.replay.writer import write_results  # noqa: E402
-from leadline.adapters.service.wiring import build_service  # noqa: E402
+from leadline.detector.engine import run_refit_with_thresholds  # noqa: E402
 from leadline.adapters.store import open_store  # noqa: E402
 
 START = datetime(2026, 2, 2, tzinfo=timezone.utc)
@@ -88,21 +92,38 @@ def rss_bytes() -> int:
         return int(handle.read().split()[1]) * resource.getpagesize()
 
 
-def time_engine(config_path: Path) -> float:
-    config = load_config(config_path)
-    service = build_service(config, from_start=True, replay=True, refit_workers=0)
-    began = time.perf_counter()
-    try:
-        service.run(until_idle=lambda: True)
-    finally:
-        service.store.close()
-    return time.perf_counter() - began
+class TimedRefit:
+    """The default refit, its time added up (fits cost the same on both paths)."""
+
+    def __init__(self) -> None:
+        self.seconds = 0.0
+        self.fits = 0
+
+    def __call__(self, request):
+        began = time.perf_counter()
+        try:
+            return run_refit_with_thresholds(request)
+        finally:
+            self.seconds += time.perf_counter() - began
+            self.fits += 1
 
 
-def time_replay(config_path: Path, workers: int, url: str) -> tuple[float, int]:
+def time_paths(history, settings, sample: int) -> list[tuple[str, float, float, int, int]]:
+    """(path, seconds, fit seconds, readings, events) of the per-reading and the fast path on the sample."""
+    feeds = [history.feeds[f] for f in sorted(history.feeds)[:sample]]
+    rows = []
+    for name, fast in (("per-reading engine", False), ("fast path (quiet runs)", True)):
+        refit = TimedRefit()
+        began = time.perf_counter()
+        result = replay_group(feeds, settings, refit=refit, fast=fast)
+        seconds = time.perf_counter() - began
+        rows.append((name, seconds, refit.seconds, result.readings, len(result.events), result.quiet_readings))
+    return rows
+
+
+def time_replay(config_path: Path, history, workers: int, url: str) -> tuple[float, int]:
     config = load_config(config_path)
     began = time.perf_counter()
-    history = history_for(config)
     run = run_replay(history, replay_settings(config, list(history.feeds)), workers=workers)
     store = open_store(url)
     try:
@@ -160,24 +181,37 @@ def main(argv=None) -> int:
     parser = argparse.ArgumentParser()
     parser.add_argument("--feeds", type=int, default=1000)
     parser.add_argument("--days", type=int, default=30)
+    parser.add_argument("--sample", type=int, default=50,
+                        help="feeds timed on both paths side by side (the per-reading one is slow)")
     parser.add_argument("--quick", action="store_true", help="20 feeds x 3 days")
     args = parser.parse_args(argv)
     if args.quick:
-        args.feeds, args.days = 20, 3
+        args.feeds, args.days, args.sample = 20, 3, 20
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         readings = write_history(folder, args.feeds, args.days)
         config_path = folder / "leadline.toml"
         print(f"{args.feeds} feeds x {args.days} days of 1-minute readings = {readings} readings "
               f"({(folder / 'history.csv').stat().st_size / 1e6:.0f} MB of CSV); cores: {os.cpu_count()}")
-        engine_s = time_engine(config_path)
-        rows = [("engine (run --replay loop, per reading)", engine_s, None)]
+        config = load_config(config_path)
+        began = time.perf_counter()
+        history = history_for(config)
+        read_s = time.perf_counter() - began
+        print(f"  history read (CSV parsing)        {read_s:8.1f} s  {readings / read_s:10.0f} readings/s")
+        settings = replay_settings(config, list(history.feeds))
+        rows = time_paths(history, settings, args.sample)
+        base_all = rows[0][3] / rows[0][1]
+        base_engine = rows[0][3] / (rows[0][1] - rows[0][2])
+        print(f"  side by side on {min(args.sample, args.feeds)} feeds:")
+        for name, seconds, fit_s, n, events, quiet in rows:
+            engine_s = seconds - fit_s
+            print(f"    {name:26s} {seconds:7.1f} s ({fit_s:6.1f} s fits)  {n / seconds:9.0f} readings/s "
+                  f"x{n / seconds / base_all:5.2f};  engine alone {engine_s / n * 1e6:6.2f} us/reading "
+                  f"x{n / engine_s / base_engine:6.2f}  ({events} events, {quiet / n:.0%} in quiet runs)")
         for workers in (1, 2):
-            seconds, events = time_replay(config_path, workers, f"sqlite:///{folder / f'replay{workers}.db'}")
-            rows.append((f"replay workers={workers}", seconds, events))
-        for name, seconds, events in rows:
-            print(f"  {name:42s} {seconds:8.1f} s  {readings / seconds:10.0f} readings/s  "
-                  f"x{engine_s / seconds:5.2f} vs engine" + (f"  ({events} events)" if events is not None else ""))
+            seconds, events = time_replay(config_path, history, workers, f"sqlite:///{folder / f'replay{workers}.db'}")
+            print(f"  all {args.feeds} feeds, replay workers={workers}: {seconds:8.1f} s  {readings / seconds:10.0f} "
+                  f"readings/s  ({events} events, store write included)")
         memory_slope(folder, args.feeds, args.days)
     return 0
 
