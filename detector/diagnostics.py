@@ -96,12 +96,18 @@ def ljung_box_pvalue(x: np.ndarray, lag: int, model_df: int = 0) -> float:
     """
     x = np.asarray(x, dtype=float)
     n = x.size
-    d = x - x.mean()
-    denom = float(d @ d)
-    if lag <= model_df or n <= lag + 1 or denom <= 0:
+    if lag <= model_df or n <= lag + 1:
         return math.nan
-    r = np.array([float(d[j:] @ d[:-j]) / denom for j in range(1, lag + 1)])
-    q = n * (n + 2) * float(np.sum(r * r / (n - np.arange(1, lag + 1))))
+    d = x - float(x.sum()) / n
+    denom = float(d @ d)
+    if denom <= 0:
+        return math.nan
+    # row j - 1 of the lagged matrix is d shifted by j (zeros after the end): all lags in one product
+    padded = np.zeros(n + lag)
+    padded[:n] = d
+    lagged = np.ndarray((lag, n), dtype=float, buffer=padded, offset=padded.itemsize, strides=(padded.itemsize,) * 2)
+    r = (lagged @ d) / denom
+    q = n * (n + 2) * float((r * r) @ (1.0 / (n - np.arange(1.0, lag + 1.0))))
     return float(chdtrc(lag - model_df, q))  # chi2.sf(q, df) is this function, without scipy.stats' overhead
 
 
@@ -145,7 +151,7 @@ class InnovationDiagnostics:
         return verdict
 
     def _judge(self, z: np.ndarray) -> tuple[str | None, dict[str, float]]:
-        ratio = float(np.mean(z * z)) / self._expected
+        ratio = float(z @ z) / z.size / self._expected
         p = ljung_box_pvalue(z, LJUNG_BOX_LAG)
         last = {"variance_ratio": float(ratio), "ljung_box_p": float(p)}
         if ratio > VARIANCE_RATIO_LIMIT:
@@ -172,14 +178,22 @@ class InnovationDiagnostics:
         z = np.asarray(z, dtype=float)
         c = DIAGNOSTICS_CLIP_ABS_Z
         clipped = np.clip(z, -c, c)
-        ring = RingBuffer.from_stored(DIAGNOSTICS_WINDOW, self.z.stored(), self.z.saved_reference, np.float32)
+        # the window's values as the float32 ring would give them back (RingBuffer.to_array)
+        reference = self.z.saved_reference
+        if reference is None:
+            reference = float(clipped[0]) if clipped.size else 0.0
+        new = (clipped - reference).astype(np.float32).astype(np.float64)
+        if reference != 0.0:
+            new += reference
+        kept = np.concatenate([self.z.to_array(), new])
+        old = len(self.z)
         since, last, done = self.since_check, self.last, 0
         for count in range(self.steps_to_due(), z.size, DIAGNOSTICS_EVERY):
-            ring.extend(clipped[done:count])
             since, done = 0, count
             if skipped(count):
                 continue
-            verdict, last = self._judge(ring.to_array())
+            end = old + count
+            verdict, last = self._judge(kept[max(0, end - DIAGNOSTICS_WINDOW):end])
             if verdict is not None:
                 return count, since, last
         return None, since + z.size - done, last

@@ -46,8 +46,9 @@ import numpy as np
 from .engine_output import EngineOutput
 from .innovation import Innovation
 from .rules.flatline import repeat_probability
+from .stream import steady_step_source
 
-__all__ = ["QuietRun", "advance_quiet", "MAX_RUN", "COVERED_RULES"]
+__all__ = ["QuietRun", "advance_quiet", "learn_quiet", "MAX_RUN", "COVERED_RULES"]
 
 #: Most readings taken in one run (bounds the arrays of one call).
 MAX_RUN = 4096
@@ -141,71 +142,112 @@ def _limit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np
     return count
 
 
+_SCAN_HEAD = """\
+def scan(values, a, gain, d, t, sqrt_f, z_limit, cusum, flat):
+    {unpack_a} = a
+    {unpack_gain} = gain
+    s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls, k, h, clip = cusum
+    previous, run, log_p, tol, half, habits, log_limit = flat
+    forecasts = []
+    zs = []
+    keep_forecast = forecasts.append
+    keep_z = zs.append
+    for y in values:
+        f = {forecast}
+        v = y - f
+        z = v / sqrt_f
+        if not -z_limit < z < z_limit:
+            break
+"""
+# the CUSUM as TabularCusum.update and _add step it, max(0.0, x) written as x if x > 0.0 else 0.0
+_SCAN_CUSUM = """\
+        call = calls + 1
+        zc = {clipped}
+        new_start_hi = call if s_hi == 0.0 else start_hi
+        new_start_lo = call if s_lo == 0.0 else start_lo
+        new_hi = s_hi + zc - k
+        new_hi = new_hi if new_hi > 0.0 else 0.0
+        new_lo = s_lo - zc - k
+        new_lo = new_lo if new_lo > 0.0 else 0.0
+        if new_hi > h or new_lo > h:
+            break
+"""
+# the flatline run as FlatlineRule.assess judges it
+_SCAN_FLAT = """\
+        if previous is None or abs(y - previous) > tol:
+            run, log_p = 0, 0.0
+        else:
+            p = repeat_probability(previous, f, sqrt_f, half)
+            habitual_run = 0
+            if habits is not None:
+                p = max(p, habits.probability(previous))
+                habitual_run = habits.longest_run(previous)
+            if (log_p + (log(p) if p > 0 else -inf)) < log_limit and run + 1 > habitual_run:
+                break
+            run, log_p = run + 1, log_p + (log(p) if p > 0 else -inf)
+        previous = y
+"""
+_SCAN_TAIL = """\
+        {unpack_a} = {next_state}
+        t += 1
+        keep_forecast(f)
+        keep_z(z)
+    return (len(zs), ({unpack_a}), forecasts, zs, (s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls),
+            (previous, run, log_p))
+"""
+_SCAN_CUSUM_COMMIT = """\
+        calls = call
+        start_hi, start_lo = new_start_hi, new_start_lo
+        s_hi, s_lo = new_hi, new_lo
+        n_hi = n_hi + 1 if s_hi > 0 else 0
+        n_lo = n_lo + 1 if s_lo > 0 else 0
+"""
+_compiled_scans: dict[str, Any] = {}
+
+
+def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool) -> Any:
+    """The scan loop for this model and these rules, compiled once (the steady step written inline,
+    :func:`~leadline.detector.stream.steady_step_source`)."""
+    unpack_a, unpack_gain, forecast, next_state = steady_step_source(system)
+    source = _SCAN_HEAD.format(unpack_a=unpack_a, unpack_gain=unpack_gain, forecast=forecast)
+    if cusum:
+        source += _SCAN_CUSUM.format(clipped="(clip if z > clip else (-clip if z < -clip else z))" if clip else "z")
+    if flat:
+        source += _SCAN_FLAT
+    if cusum:
+        source += _SCAN_CUSUM_COMMIT
+    source += _SCAN_TAIL.format(unpack_a=unpack_a, next_state=next_state)
+    function = _compiled_scans.get(source)
+    if function is None:
+        if len(_compiled_scans) >= 1024:
+            _compiled_scans.clear()
+        namespace: dict[str, Any] = {"repeat_probability": repeat_probability, "log": math.log, "inf": math.inf}
+        exec(compile(source, "<leadline quiet scan>", "exec"), namespace)  # noqa: S102 - literals only
+        function = _compiled_scans[source] = namespace["scan"]
+    return function
+
+
 def _scan(mon: Any, values: list[float], count: int, z_limit: float) -> tuple[int, tuple, list, list, tuple, tuple]:
     """Step the filter, the CUSUM and the flatline run over up to ``count`` readings.
 
     Stops before the first reading with |z| >= ``z_limit``, a CUSUM signal or
     a flatline alarm. Returns (readings taken, the filter's state, forecasts,
-    z, the CUSUM's run state, the flatline's run state).
+    z, the CUSUM's run state, the flatline's run state); the two run states
+    are empty tuples for a rule the feed does not run.
     """
     stream = mon.stream
-    step_fn, gain, d = stream._step_fn, stream._gain, stream._d_const
-    sqrt_f = stream._sqrtF_ss
-    a = stream._a_tuple
-    t0 = stream.step
     cusum = mon.cusum.cusum if mon.cusum is not None else None
-    if cusum is not None:
-        s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls = cusum.run_state()
-        k, h, clip = cusum.k, cusum.h, cusum.clip_abs_z
     flat = mon.rules.get("flatline")
-    if flat is not None:
-        previous, run, log_p = flat.run_state()
-        tol, half, habits, log_limit = flat.tolerance, flat.half_width, flat.habits, flat._log_limit
-    forecasts: list[float] = []
-    zs: list[float] = []
-    taken = 0
-    for j in range(count):
-        y = values[j]
-        f, v, a_next = step_fn(a, gain, y, d, t0 + j)
-        z = v / sqrt_f
-        if not -z_limit < z < z_limit:
-            break
-        if cusum is not None:
-            call = calls + 1
-            zc = z if clip is None else (clip if z > clip else (-clip if z < -clip else z))
-            new_start_hi = call if s_hi == 0.0 else start_hi
-            new_start_lo = call if s_lo == 0.0 else start_lo
-            new_hi = max(0.0, s_hi + zc - k)
-            new_lo = max(0.0, s_lo - zc - k)
-            if new_hi > h or new_lo > h:
-                break
-        if flat is not None:
-            if previous is None or abs(y - previous) > tol:
-                new_run, new_log_p = 0, 0.0
-            else:
-                p = repeat_probability(previous, f, sqrt_f, half)
-                habitual_run = 0
-                if habits is not None:
-                    p = max(p, habits.probability(previous))
-                    habitual_run = habits.longest_run(previous)
-                new_run = run + 1
-                new_log_p = log_p + (math.log(p) if p > 0 else -math.inf)
-                if new_log_p < log_limit and new_run > habitual_run:
-                    break
-            previous, run, log_p = y, new_run, new_log_p
-        if cusum is not None:
-            calls = call
-            start_hi, start_lo = new_start_hi, new_start_lo
-            s_hi, s_lo = new_hi, new_lo
-            n_hi = n_hi + 1 if s_hi > 0 else 0
-            n_lo = n_lo + 1 if s_lo > 0 else 0
-        a = a_next
-        forecasts.append(f)
-        zs.append(z)
-        taken += 1
-    cusum_state = (s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls) if cusum is not None else ()
-    flat_state = (previous, run, log_p) if flat is not None else ()
-    return taken, a, forecasts, zs, cusum_state, flat_state
+    cusum_in = (*cusum.run_state(), cusum.k, cusum.h, cusum.clip_abs_z) if cusum is not None else (0.0,) * 10
+    flat_in = (*flat.run_state(), flat.tolerance, flat.half_width, flat.habits, flat._log_limit) \
+        if flat is not None else (None, 0, 0.0, 0.0, 0.0, None, 0.0)
+    scan = _scan_function(stream.system, cusum is not None, cusum is not None and cusum.clip_abs_z is not None,
+                          flat is not None)
+    taken, a, forecasts, zs, cusum_state, flat_state = scan(
+        values[:count], stream._a_tuple, stream._gain, stream._d_const, stream.step, stream._sqrtF_ss, z_limit,
+        cusum_in, flat_in)
+    return (taken, a, forecasts, zs, cusum_state if cusum is not None else (),
+            flat_state if flat is not None else ())
 
 
 def _z_limit(mon: Any) -> float:
@@ -335,3 +377,48 @@ def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple,
     half = stream._halfwidth_ss
     rows = np.column_stack([epoch_s, values, forecast, forecast - half, forecast + half])
     return QuietRun(taken, rows, feed.tag_events(out))
+
+
+def learn_quiet(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np.ndarray) -> int:
+    """Keep the learning readings at the head of ``epoch_s``/``values`` that do not fill the window.
+
+    For a feed still learning before its grid exists: the readings are kept
+    as :meth:`FeedLifecycle.process` keeps them one by one (finite values,
+    none ahead of the clock), up to but not including the reading that
+    completes the training window, which the caller hands to the
+    per-reading path (it puts the window on a grid and asks for the fit).
+
+    Returns
+    -------
+    int
+        Readings taken (0 when the feed is not learning before its grid).
+    """
+    if feed.state != "learning" or feed.cursor is not None or feed.counter is not None:
+        return 0
+    epoch_s = np.asarray(epoch_s[:MAX_RUN], dtype=float)
+    values = np.asarray(values[:MAX_RUN], dtype=float)
+    ok = np.isfinite(values)
+    tolerance = feed.settings.future_tolerance_s
+    if tolerance is not None:
+        ok &= ~(epoch_s - np.asarray(clock_epoch_s[:MAX_RUN], dtype=float) > tolerance)
+    count = values.size if ok.all() else int(np.argmin(ok))
+    if count == 0:
+        return 0
+    epoch_s, values = epoch_s[:count], values[:count]
+    s = feed.settings
+    real = feed.raw_real + np.arange(1, count + 1)
+    low = np.minimum.accumulate(np.concatenate([[feed.raw_span[0]], epoch_s]))[1:]
+    high = np.maximum.accumulate(np.concatenate([[feed.raw_span[1]], epoch_s]))[1:]
+    full = (real >= feed.next_learning_check) & ((real >= s.train_points) | (high - low >= s.train_span_s))
+    if full.any():
+        count = int(np.argmax(full))
+        if count == 0:
+            return 0
+        epoch_s, values, low, high = epoch_s[:count], values[:count], low[:count], high[:count]
+    feed.readings += count
+    feed.raw_epochs.extend(epoch_s.tolist())
+    feed.raw_values.extend(values.tolist())
+    feed.raw_real += count
+    feed.raw_span = (float(low[-1]), float(high[-1]))
+    feed.last_time, feed.last_value = _utc(epoch_s[-1]), float(values[-1])
+    return count

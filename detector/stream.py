@@ -79,23 +79,21 @@ class Regression(Protocol):
     def to_dict(self) -> dict[str, Any]: ...
 
 
-def _compile_steady_step(system: LinearSystem):
-    """Build ``step(a, gain, y, d, t) -> (forecast, error, next_state)``.
+def steady_step_source(system: LinearSystem) -> tuple[str, str, str, str]:
+    """The steady step as Python expressions over the names ``a0..``, ``g0..``, ``y``, ``d``, ``t``, ``v``.
 
-    The matrices are written into the source as float literals (``repr``
-    round-trips a float exactly), zeros are left out, so the step is a few
-    multiply-adds with no numpy call overhead.
+    Returns ``(unpack_a, unpack_gain, forecast, next_state)``: the targets
+    that unpack a and the gain (``"a0, a1"``; a trailing comma for one
+    state), the forecast Z a_t + d_t, and the tuple of the next state's
+    expressions (in terms of v = y - f). The matrices are written as float
+    literals (``repr`` round-trips a float exactly) and zeros are left out.
+    Both :func:`_compile_steady_step` and the replay's quiet runs
+    (:mod:`.quiet_run`) are built from these, so they do the same
+    floating-point operations in the same order.
     """
     k = system.k_states
     a_names = [f"a{i}" for i in range(k)]
     z_terms = [f"{float(z)!r}*{a}" for z, a in zip(system.design, a_names) if z != 0.0]
-    lines = [
-        "def step(a, gain, y, d, t):",
-        f"    {', '.join(a_names)}{',' if k == 1 else ''} = a",
-        f"    {', '.join(f'g{i}' for i in range(k))}{',' if k == 1 else ''} = gain",
-        f"    f = {' + '.join(z_terms) if z_terms else '0.0'} + d",
-        "    v = y - f",
-    ]
     out = []
     for i in range(k):
         terms = [f"{float(system.transition[i, j])!r}*{a_names[j]}" for j in range(k) if system.transition[i, j] != 0.0]
@@ -105,7 +103,27 @@ def _compile_steady_step(system: LinearSystem):
         if system.state_intercept_slope[i] != 0.0:
             terms.append(f"{float(system.state_intercept_slope[i])!r}*t")
         out.append(" + ".join(terms))
-    lines.append(f"    return f, v, ({', '.join(out)}{',' if k == 1 else ''})")
+    comma = "," if k == 1 else ""
+    return (f"{', '.join(a_names)}{comma}", f"{', '.join(f'g{i}' for i in range(k))}{comma}",
+            f"{' + '.join(z_terms) if z_terms else '0.0'} + d", f"({', '.join(out)}{comma})")
+
+
+def _compile_steady_step(system: LinearSystem):
+    """Build ``step(a, gain, y, d, t) -> (forecast, error, next_state)``.
+
+    The matrices are written into the source as float literals, zeros are
+    left out (:func:`steady_step_source`), so the step is a few
+    multiply-adds with no numpy call overhead.
+    """
+    unpack_a, unpack_gain, forecast, next_state = steady_step_source(system)
+    lines = [
+        "def step(a, gain, y, d, t):",
+        f"    {unpack_a} = a",
+        f"    {unpack_gain} = gain",
+        f"    f = {forecast}",
+        "    v = y - f",
+        f"    return f, v, {next_state}",
+    ]
     namespace: dict[str, Any] = {}
     exec(compile("\n".join(lines), "<leadline steady step>", "exec"), namespace)  # noqa: S102 - literals only
     return namespace["step"]

@@ -24,7 +24,8 @@ from leadline.detector.engine import run_refit_with_thresholds
 from leadline.detector.feed import FeedLifecycle
 from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.feed_state import feed_checkpoint
-from leadline.detector.quiet_run import advance_quiet
+from leadline.detector.engine_output import EngineOutput
+from leadline.detector.quiet_run import advance_quiet, learn_quiet
 from leadline.detector.readings import Reading
 from leadline.detector.rules import MonitorConfig
 from leadline.detector.simulate import simulate_arima
@@ -113,8 +114,11 @@ def _drive(history: FeedHistory, settings: FeedSettings, fast: bool, stops: set[
     states, version, i, runs = {}, 0, 0, 0
     while i < epochs.size:
         run = advance_quiet(feed, epochs[i:], values[i:], no_clock[i:]) if fast else None
+        learnt = learn_quiet(feed, epochs[i:], values[i:], no_clock[i:]) if fast and run is None else 0
         if run is not None:
             out, i, runs = run.output, i + run.count, runs + 1
+        elif learnt:
+            out, i = EngineOutput(), i + learnt
         else:
             reading = Reading(history.feed_id, datetime.fromtimestamp(epochs[i], tz=timezone.utc), float(values[i]))
             out, i = feed.process(reading, None), i + 1

@@ -30,7 +30,7 @@ import numpy as np
 from leadline.detector.engine import Engine, FeedSettings, run_refit_with_thresholds
 from leadline.detector.events import AlarmEvent
 from leadline.detector.evidence import EvidenceRecord, EvidenceRecorder
-from leadline.detector.quiet_run import MAX_RUN, advance_quiet
+from leadline.detector.quiet_run import MAX_RUN, advance_quiet, learn_quiet
 from leadline.detector.readings import Reading
 
 from .history import FeedHistory, readings_of
@@ -213,6 +213,14 @@ class _FeedByFeed(_GroupReplay):
                 i += run.count
                 result.readings += run.count
                 result.quiet_readings += run.count
+            elif lifecycle is not None and (learnt := learn_quiet(
+                    lifecycle, epochs[i:i + MAX_RUN], values[i:i + MAX_RUN], clock[i:i + MAX_RUN])):
+                self.clock = _utc(epoch_list[i + learnt - 1])
+                inside = times[first_tick[i + 1]:last_tick[i + learnt - 1] + 1] if learnt > 1 else times[:0]
+                if inside.size:
+                    self.handle(engine.tick(_utc(inside[-1])))
+                i += learnt
+                result.readings += learnt
             else:
                 reading = Reading(feed_id, _utc(epoch_list[i]), value_list[i])
                 self.clock = reading.timestamp

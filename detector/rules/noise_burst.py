@@ -115,13 +115,19 @@ def quadratic_form_sf(q: float, weights: np.ndarray) -> float:
 MAX_PROBABILITY = 0.2
 
 
-@lru_cache(maxsize=512)
 def burst_limit(n: int, tail_probability: float, limit_scale: float = 1.0) -> float:
     """The upper ``tail_probability`` quantile of Q for n valid values, times ``limit_scale``."""
     if n < 2:
         return math.inf
     if not 0 < tail_probability <= MAX_PROBABILITY:
         raise RuleError(f"noise_burst probabilities must be in (0, {MAX_PROBABILITY}], got {tail_probability!r}")
+    return limit_scale * _burst_quantile(int(n), float(tail_probability))
+
+
+@lru_cache(maxsize=1024)
+def _burst_quantile(n: int, tail_probability: float) -> float:
+    """The upper ``tail_probability`` quantile of Q for n valid values (cached: every refit of a
+    feed asks for the same ones, each with its own ``limit_scale``)."""
     lam = successive_difference_weights(n)
     mean = float(lam.sum())
     sd = math.sqrt(2.0 * float(np.sum(lam * lam)))
@@ -134,7 +140,7 @@ def burst_limit(n: int, tail_probability: float, limit_scale: float = 1.0) -> fl
     low, high = mean + 0.5 * sd, mean + 10.0 * sd
     while f(high) > 0:
         high += 10.0 * sd
-    return limit_scale * float(brentq(f, low, high, xtol=1e-9))
+    return float(brentq(f, low, high, xtol=1e-9))
 
 
 def successive_difference_statistic(values) -> float:

@@ -4,8 +4,10 @@ Run: ``python tests/benchmarks/bench_replay.py [--feeds 1000] [--days 30] [--sam
 
 Writes N invented feeds x D days of one-minute readings (seeded AR(1), the
 Heronsgate district, one long-layout CSV file in time order) and a config
-with a fixed AR(1) model, sigma limits, the default learning window of 2,000
-readings and a daily refit. Then, in one run, times:
+with a fixed AR(1) model, the default learning window of 2,000 readings, a
+daily refit and the default budget limits (0.2 false alarms per feed-week;
+``--mode sigma`` for the fixed sigma limits, which raise far more episodes
+on the same feeds and so send more readings through the per-reading path). Then, in one run, times:
 
 * ``per-reading`` and ``fast``: :func:`~leadline.adapters.replay.runner.replay_group`
   on the same ``--sample`` feeds with ``fast=False`` (every reading through
@@ -59,8 +61,8 @@ from_start = true
 
 [feeds.defaults]
 interval = "1min"
-model = { order = [1, 0, 0] }
-threshold_mode = "sigma"
+model = {{ order = [1, 0, 0] }}
+threshold_mode = "{mode}"
 
 [refit]
 every = "1d"
@@ -68,7 +70,7 @@ workers = 1
 """
 
 
-def write_history(folder: Path, feeds: int, days: int) -> int:
+def write_history(folder: Path, feeds: int, days: int, mode: str = "budget") -> int:
     rng = np.random.default_rng(20260202)
     n = days * 1440
     phi, sigma = 0.7, 0.1
@@ -83,7 +85,7 @@ def write_history(folder: Path, feeds: int, days: int) -> int:
         for t in range(n):
             stamp = (START + timedelta(minutes=t)).isoformat()
             handle.write("".join(f"{stamp},{names[i]},{x[i, t]:.5f}\n" for i in range(feeds)))
-    (folder / "leadline.toml").write_text(CONFIG)
+    (folder / "leadline.toml").write_text(CONFIG.format(mode=mode))
     return feeds * n
 
 
@@ -146,7 +148,7 @@ def memory(config_path: Path) -> tuple[int, int, int]:
     return input_bytes, peak, rss_bytes() - before
 
 
-def memory_slope(folder: Path, feeds: int, days: int) -> None:
+def memory_slope(folder: Path, feeds: int, days: int, mode: str) -> None:
     """Memory per 1,000 feeds beyond the input: the slope between half the feeds and all of them.
 
     A fit's transient arrays are a fixed cost whatever the number of feeds, so
@@ -160,7 +162,7 @@ def memory_slope(folder: Path, feeds: int, days: int) -> None:
     for n in sizes:
         sub = folder / f"mem{n}"
         sub.mkdir()
-        write_history(sub, n, days)
+        write_history(sub, n, days, mode)
         code = ("import sys; sys.path.insert(0, %r); import bench_replay as b, pathlib; "
                 "print(*b.memory(pathlib.Path(%r)))" % (str(Path(__file__).parent), str(sub / "leadline.toml")))
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
@@ -183,16 +185,18 @@ def main(argv=None) -> int:
     parser.add_argument("--days", type=int, default=30)
     parser.add_argument("--sample", type=int, default=50,
                         help="feeds timed on both paths side by side (the per-reading one is slow)")
+    parser.add_argument("--mode", choices=("budget", "sigma"), default="budget")
     parser.add_argument("--quick", action="store_true", help="20 feeds x 3 days")
     args = parser.parse_args(argv)
     if args.quick:
         args.feeds, args.days, args.sample = 20, 3, 20
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        readings = write_history(folder, args.feeds, args.days)
+        readings = write_history(folder, args.feeds, args.days, args.mode)
         config_path = folder / "leadline.toml"
         print(f"{args.feeds} feeds x {args.days} days of 1-minute readings = {readings} readings "
-              f"({(folder / 'history.csv').stat().st_size / 1e6:.0f} MB of CSV); cores: {os.cpu_count()}")
+              f"({(folder / 'history.csv').stat().st_size / 1e6:.0f} MB of CSV), {args.mode} limits; "
+              f"cores: {os.cpu_count()}")
         config = load_config(config_path)
         began = time.perf_counter()
         history = history_for(config)
@@ -212,7 +216,7 @@ def main(argv=None) -> int:
             seconds, events = time_replay(config_path, history, workers, f"sqlite:///{folder / f'replay{workers}.db'}")
             print(f"  all {args.feeds} feeds, replay workers={workers}: {seconds:8.1f} s  {readings / seconds:10.0f} "
                   f"readings/s  ({events} events, store write included)")
-        memory_slope(folder, args.feeds, args.days)
+        memory_slope(folder, args.feeds, args.days, args.mode)
     return 0
 
 
