@@ -1,28 +1,31 @@
 """Replay speed and memory: the fast path (quiet runs) against the per-reading engine, in one run.
 
-Run: ``python tests/benchmarks/bench_replay.py [--feeds 1000] [--days 30] [--sample 50] [--quick]``
+Run: ``python tests/benchmarks/bench_replay.py [--feeds 1000] [--days 30] [--sample 50] [--whole] [--quick]``
 
 Writes N invented feeds x D days of one-minute readings (seeded AR(1), the
 Heronsgate district, one long-layout CSV file in time order) and a config
 with a fixed AR(1) model, the default learning window of 2,000 readings, a
 daily refit and the default budget limits (0.2 false alarms per feed-week;
 ``--mode sigma`` for the fixed sigma limits, which raise far more episodes
-on the same feeds and so send more readings through the per-reading path). Then, in one run, times:
+on the same feeds and so send more readings through the per-reading path).
+Then, in one run:
 
+* the history read (CSV parsing), timed on its own;
+* the fits of the ``--sample`` feeds, made once (the fast path's first run)
+  and timed: they cost the same on both paths and are then taken from a
+  cache, so that the timed runs measure the engine alone;
 * ``per-reading`` and ``fast``: :func:`~leadline.adapters.replay.runner.replay_group`
-  on the same ``--sample`` feeds with ``fast=False`` (every reading through
+  on those feeds with ``fast=False`` (every reading through
   ``Engine.process``, the ticks of the merged history) and ``fast=True``
-  (feed by feed, quiet runs taken at once), each fit timed on its own, so
-  that the engine's share (the whole less the fits, which cost the same on
-  both paths) is printed beside the whole;
-* ``replay w=1`` and ``replay w=2``: :func:`leadline.adapters.replay.session.run_replay`
-  over all N feeds (the fast path), 1 and 2 processes, after the history is read;
-* the history read (CSV parsing) on its own.
+  (feed by feed, quiet runs taken at once), side by side; the ratios are
+  printed for the engine alone and with the fits added back;
+* with ``--whole`` (and ``--quick``), ``leadline replay``'s own path over
+  all N feeds with real fits, 1 and 2 processes.
 
-Memory: the tracemalloc peak of the one-process replay (history read, run
-and results, not the store write) and the growth of the resident set size,
-less the bytes of the history arrays, per 1,000 feeds (the slope between
-half the feeds and all of them).
+Memory: the tracemalloc peak and the growth of the resident set size of the
+fast replay (run and results, not the store write) beyond the history
+arrays, per 1,000 feeds: the slope between half the sample and all of it,
+each in a fresh process, fits from the cache.
 """
 
 from __future__ import annotations
@@ -94,33 +97,47 @@ def rss_bytes() -> int:
         return int(handle.read().split()[1]) * resource.getpagesize()
 
 
-class TimedRefit:
-    """The default refit, its time added up (fits cost the same on both paths)."""
+class CachedRefit:
+    """The default refit, timed, each result kept by (feed, request number) for the timed runs.
+
+    Both paths ask for the same fits in the same order (the replay is
+    deterministic), so the timed runs take them from here and measure the
+    engine alone; the fits' own cost is measured once, on the first run.
+    """
 
     def __init__(self) -> None:
         self.seconds = 0.0
-        self.fits = 0
+        self.fits: dict[tuple[str, int], tuple] = {}
+        self.misses = 0
 
     def __call__(self, request):
+        key = (request.feed_id, request.request_id)
+        kept = self.fits.get(key)
+        if kept is not None and np.array_equal(kept[0], request.values, equal_nan=True):
+            return kept[1]
+        self.misses += 1
         began = time.perf_counter()
-        try:
-            return run_refit_with_thresholds(request)
-        finally:
-            self.seconds += time.perf_counter() - began
-            self.fits += 1
+        result = run_refit_with_thresholds(request)
+        self.seconds += time.perf_counter() - began
+        self.fits[key] = (request.values.copy(), result)
+        return result
 
 
-def time_paths(history, settings, sample: int) -> list[tuple[str, float, float, int, int]]:
-    """(path, seconds, fit seconds, readings, events) of the per-reading and the fast path on the sample."""
+def time_paths(history, settings, sample: int) -> tuple[float, int, list[tuple], dict]:
+    """Fit seconds, fits, (path, seconds, events, quiet readings, readings) of both paths on the
+    sample, and the fits kept."""
     feeds = [history.feeds[f] for f in sorted(history.feeds)[:sample]]
+    refit = CachedRefit()
+    replay_group(feeds, settings, refit=refit, fast=True)  # the fits, timed once
+    fit_s, fitted = refit.seconds, refit.misses
     rows = []
     for name, fast in (("per-reading engine", False), ("fast path (quiet runs)", True)):
-        refit = TimedRefit()
         began = time.perf_counter()
         result = replay_group(feeds, settings, refit=refit, fast=fast)
-        seconds = time.perf_counter() - began
-        rows.append((name, seconds, refit.seconds, result.readings, len(result.events), result.quiet_readings))
-    return rows
+        rows.append((name, time.perf_counter() - began, len(result.events), result.quiet_readings, result.readings))
+    if refit.misses != fitted:
+        raise RuntimeError(f"the paths asked for different fits ({refit.misses - fitted} not in the cache)")
+    return fit_s, fitted, rows, refit.fits
 
 
 def time_replay(config_path: Path, history, workers: int, url: str) -> tuple[float, int]:
@@ -135,48 +152,58 @@ def time_replay(config_path: Path, history, workers: int, url: str) -> tuple[flo
     return time.perf_counter() - began, run.summary.events
 
 
-def memory(config_path: Path) -> tuple[int, int, int]:
-    """(history array bytes, tracemalloc peak, RSS growth) of a one-process replay, store write left out."""
+def memory(config_path: Path, cache_path: Path, feeds: int) -> tuple[int, int, int]:
+    """(history bytes of the feeds, tracemalloc peak, RSS growth) of the fast replay of the first ``feeds``
+    feeds, fits from the cache (loaded, with the whole history, before the measure starts)."""
+    import pickle
+
     config = load_config(config_path)
+    history = history_for(config)
+    settings = replay_settings(config, list(history.feeds))
+    refit = CachedRefit()
+    refit.fits = pickle.loads(cache_path.read_bytes())
+    chosen = [history.feeds[f] for f in sorted(history.feeds)[:feeds]]
+    input_bytes = sum(h.epoch_s.nbytes + h.values.nbytes for h in chosen)
     before = rss_bytes()
     tracemalloc.start()
-    history = history_for(config)
-    input_bytes = sum(h.epoch_s.nbytes + h.values.nbytes for h in history.feeds.values())
-    run_replay(history, replay_settings(config, list(history.feeds)))
+    result = replay_group(chosen, settings, refit=refit, fast=True)
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
-    return input_bytes, peak, rss_bytes() - before
+    grown = rss_bytes() - before
+    if refit.misses:
+        raise RuntimeError(f"{refit.misses} fits were not in the cache")
+    del result
+    return input_bytes, peak, grown
 
 
-def memory_slope(folder: Path, feeds: int, days: int, mode: str) -> None:
-    """Memory per 1,000 feeds beyond the input: the slope between half the feeds and all of them.
+def memory_slope(folder: Path, cache_path: Path, sample: int) -> None:
+    """Memory per 1,000 feeds beyond the input: the slope between half the sample and all of it.
 
-    A fit's transient arrays are a fixed cost whatever the number of feeds, so
-    the slope, not the total over the feeds, is the cost per feed. Each size
-    runs in a fresh process (the peak and RSS of one run are not the next's).
+    Each size runs in a fresh process (the peak and RSS of one run are not
+    the next's), its fits taken from the cache of the timed runs, so a fit's
+    transient arrays are not counted; what is counted is what the replay
+    keeps per feed (events, models, evidence) and its working state.
     """
     import subprocess
 
-    sizes = sorted({max(1, feeds // 2), feeds})
+    sizes = sorted({max(1, sample // 2), sample})
     measured = {}
     for n in sizes:
-        sub = folder / f"mem{n}"
-        sub.mkdir()
-        write_history(sub, n, days, mode)
         code = ("import sys; sys.path.insert(0, %r); import bench_replay as b, pathlib; "
-                "print(*b.memory(pathlib.Path(%r)))" % (str(Path(__file__).parent), str(sub / "leadline.toml")))
+                "print(*b.memory(pathlib.Path(%r), pathlib.Path(%r), %d))"
+                % (str(Path(__file__).parent), str(folder / "leadline.toml"), str(cache_path), n))
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
         measured[n] = [int(x) for x in out.split()[-3:]]
     for n in sizes:
         input_bytes, peak, grown = measured[n]
-        print(f"memory, {n} feeds: history arrays {input_bytes / 1e6:.1f} MB, tracemalloc peak "
+        print(f"  memory, {n} feeds: their history arrays {input_bytes / 1e6:.1f} MB; replay: tracemalloc peak "
               f"{peak / 1e6:.1f} MB, RSS growth {grown / 1e6:.1f} MB")
     if len(sizes) == 2:
         a, b = sizes
         per = 1000.0 / (b - a)
-        (ia, pa, ga), (ib, pb, gb) = measured[a], measured[b]
-        print(f"memory per 1,000 feeds beyond the input (slope {a} -> {b} feeds): tracemalloc peak "
-              f"{((pb - ib) - (pa - ia)) * per / 1e6:.0f} MB, RSS {((gb - ib) - (ga - ia)) * per / 1e6:.0f} MB")
+        (_, pa, ga), (_, pb, gb) = measured[a], measured[b]
+        print(f"  memory per 1,000 feeds beyond the input (slope {a} -> {b} feeds): tracemalloc peak "
+              f"{(pb - pa) * per / 1e6:.0f} MB, RSS {(gb - ga) * per / 1e6:.0f} MB")
 
 
 def main(argv=None) -> int:
@@ -186,10 +213,12 @@ def main(argv=None) -> int:
     parser.add_argument("--sample", type=int, default=50,
                         help="feeds timed on both paths side by side (the per-reading one is slow)")
     parser.add_argument("--mode", choices=("budget", "sigma"), default="budget")
+    parser.add_argument("--whole", action="store_true",
+                        help="also replay all feeds with real fits, 1 and 2 processes (fits dominate: slow)")
     parser.add_argument("--quick", action="store_true", help="20 feeds x 3 days")
     args = parser.parse_args(argv)
     if args.quick:
-        args.feeds, args.days, args.sample = 20, 3, 20
+        args.feeds, args.days, args.sample, args.whole = 20, 3, 20, True
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         readings = write_history(folder, args.feeds, args.days, args.mode)
@@ -203,20 +232,26 @@ def main(argv=None) -> int:
         read_s = time.perf_counter() - began
         print(f"  history read (CSV parsing)        {read_s:8.1f} s  {readings / read_s:10.0f} readings/s")
         settings = replay_settings(config, list(history.feeds))
-        rows = time_paths(history, settings, args.sample)
-        base_all = rows[0][3] / rows[0][1]
-        base_engine = rows[0][3] / (rows[0][1] - rows[0][2])
-        print(f"  side by side on {min(args.sample, args.feeds)} feeds:")
-        for name, seconds, fit_s, n, events, quiet in rows:
-            engine_s = seconds - fit_s
-            print(f"    {name:26s} {seconds:7.1f} s ({fit_s:6.1f} s fits)  {n / seconds:9.0f} readings/s "
-                  f"x{n / seconds / base_all:5.2f};  engine alone {engine_s / n * 1e6:6.2f} us/reading "
-                  f"x{n / engine_s / base_engine:6.2f}  ({events} events, {quiet / n:.0%} in quiet runs)")
-        for workers in (1, 2):
-            seconds, events = time_replay(config_path, history, workers, f"sqlite:///{folder / f'replay{workers}.db'}")
-            print(f"  all {args.feeds} feeds, replay workers={workers}: {seconds:8.1f} s  {readings / seconds:10.0f} "
-                  f"readings/s  ({events} events, store write included)")
-        memory_slope(folder, args.feeds, args.days, args.mode)
+        fit_s, fits, rows, refit_cache = time_paths(history, settings, args.sample)
+        n = rows[0][4]
+        print(f"  side by side on {min(args.sample, args.feeds)} feeds ({n} readings; {fits} fits, "
+              f"{fit_s:.1f} s, {fit_s / fits * 1e3:.0f} ms a fit, timed once and then taken from a cache):")
+        base_engine, base_all = rows[0][1], rows[0][1] + fit_s
+        for name, seconds, events, quiet, _ in rows:
+            print(f"    {name:24s} engine {seconds:7.1f} s  {seconds / n * 1e6:6.2f} us/reading  "
+                  f"x{base_engine / seconds:6.2f};  with the fits {n / (seconds + fit_s):8.0f} readings/s "
+                  f"x{base_all / (seconds + fit_s):5.2f}  ({events} events, {quiet / n:.0%} in quiet runs)")
+        if args.whole:
+            for workers in (1, 2):
+                seconds, events = time_replay(config_path, history, workers,
+                                              f"sqlite:///{folder / f'replay{workers}.db'}")
+                print(f"  all {args.feeds} feeds, leadline replay's path, workers={workers}: {seconds:8.1f} s  "
+                      f"{readings / seconds:10.0f} readings/s  ({events} alarms, store write included)")
+        import pickle
+
+        cache_path = folder / "fits.pickle"
+        cache_path.write_bytes(pickle.dumps(refit_cache))
+        memory_slope(folder, cache_path, min(args.sample, args.feeds))
     return 0
 
 
