@@ -90,6 +90,11 @@ class Engine:
     def feed_ids(self) -> list[str]:
         return list(self._feeds)
 
+    def lifecycle_of(self, feed_id: str) -> FeedLifecycle | None:
+        """The feed's :class:`FeedLifecycle` itself (None before its first reading), for the
+        replay's quiet runs (:mod:`.quiet_run`), which advance it in bulk."""
+        return self._feeds.get(feed_id)
+
     def state_of(self, feed_id: str) -> str:
         """``learning``, ``fitting`` or ``watching``."""
         return self._get(feed_id).state

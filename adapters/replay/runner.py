@@ -11,6 +11,16 @@ deterministic and quick:
   installed before the next reading (the same way for every run), so
   scheduled refits happen at the live cadence of reading time.
 
+By default the group goes feed by feed (:class:`_FeedByFeed`): a watching
+feed's quiet stretches are taken at once by
+:func:`~leadline.detector.quiet_run.advance_quiet` and a learning feed's
+readings by :func:`~leadline.detector.quiet_run.learn_quiet`, both leaving
+the feed exactly as the readings one by one would, and every other reading
+goes through ``Engine.process`` with the ticks that can change the feed.
+``fast=False`` keeps the merged, reading-by-reading replay, the reference
+that ``tests/test_quiet_run.py`` holds the fast path to (events, models and
+evidence equal).
+
 The model versions are numbered per feed from 1, as a fresh store numbers
 them; :mod:`.writer` maps them to the store's numbers. The result holds
 plain data only (events, model records, evidence records), so a process
@@ -150,7 +160,6 @@ class _FeedByFeed(_GroupReplay):
     def __init__(self, settings: Mapping[str, FeedSettings], refit: Callable[[Any], Any]) -> None:
         super().__init__(settings, refit)
         self.settings = settings
-        self.done = 0
         self.next_progress = 0
 
     def run(self, feeds: Iterable[FeedHistory], on_progress: Callable[[int], None] | None = None,
@@ -170,8 +179,9 @@ class _FeedByFeed(_GroupReplay):
         if times.size == 0:
             return
         engine = self.engine
-        monitor = engine._feeds[feed_id].monitor if feed_id in engine._feeds else None
-        stale = None if monitor is None or engine.state_of(feed_id) != "watching" else monitor.stale
+        lifecycle = engine.lifecycle_of(feed_id)
+        watching = lifecycle is not None and lifecycle.state == "watching" and lifecycle.monitor is not None
+        stale = lifecycle.monitor.stale if watching else None
         due = None if stale is None else stale.due()
         if due is not None and times[-1] >= due.timestamp() - 1e-3:
             for epoch in times.tolist():
@@ -200,16 +210,17 @@ class _FeedByFeed(_GroupReplay):
                     self.handle(engine.tick(_utc(times[last_tick[0]])))  # the engine's clock; no feed yet
                 else:
                     self._ticks(times[first_tick[i]:last_tick[i] + 1], feed_id)
-            lifecycle = engine._feeds.get(feed_id)
+            lifecycle = engine.lifecycle_of(feed_id)
             run = None if lifecycle is None else advance_quiet(
                 lifecycle, epochs[i:i + MAX_RUN], values[i:i + MAX_RUN], clock[i:i + MAX_RUN])
             if run is not None:
-                self.clock = _utc(epoch_list[i + run.count - 1])
-                result.evidence.extend(self.evidence.slots(feed_id, run.rows))
-                self.handle(run.output)
+                # the last tick among the run's readings came before its last reading and what that asked
                 inside = times[first_tick[i + 1]:last_tick[i + run.count - 1] + 1] if run.count > 1 else times[:0]
                 if inside.size:
                     self.handle(engine.tick(_utc(inside[-1])))
+                self.clock = _utc(epoch_list[i + run.count - 1])
+                result.evidence.extend(self.evidence.slots(feed_id, run.rows))
+                self.handle(run.output)
                 i += run.count
                 result.readings += run.count
                 result.quiet_readings += run.count
@@ -232,6 +243,7 @@ class _FeedByFeed(_GroupReplay):
                 self.next_progress += every
         self._ticks(times[np.searchsorted(times, epochs[-1], side="left"):], feed_id)
 
+
 def replay_group(feeds: Iterable[FeedHistory], settings: Mapping[str, FeedSettings],
                  refit: Callable[[Any], Any] | None = None,
                  on_progress: Callable[[int], None] | None = None, fast: bool = True) -> GroupResult:
@@ -246,7 +258,10 @@ def replay_group(feeds: Iterable[FeedHistory], settings: Mapping[str, FeedSettin
         ``refit(request) -> (FittedModel, thresholds JSON)``; default
         :func:`~leadline.detector.engine.run_refit_with_thresholds`.
     on_progress : callable, optional
-        Called with the readings replayed so far, every 100,000 readings.
+        Called with the readings replayed so far, about every 100,000 readings.
+    fast : bool
+        Feed by feed with quiet runs (default), or every reading through
+        the engine in merged time order (the reference path).
     """
     kind = _FeedByFeed if fast else _GroupReplay
     return kind(settings, refit or run_refit_with_thresholds).run(feeds, on_progress)
