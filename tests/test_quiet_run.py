@@ -12,6 +12,7 @@ byte for byte, and give the same events, models and evidence.
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, replace
 from datetime import datetime, timezone
 
@@ -25,11 +26,14 @@ from leadline.detector.feed import FeedLifecycle
 from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.feed_state import feed_checkpoint
 from leadline.detector.engine_output import EngineOutput
-from leadline.detector.quiet_run import advance_quiet, learn_quiet
+from leadline.detector.fitting import fit
+from leadline.detector.quiet_run import _scan_function, advance_quiet, learn_quiet
 from leadline.detector.readings import Reading
 from leadline.detector.rules import MonitorConfig
 from leadline.detector.simulate import simulate_arima
 from leadline.detector.spec import ModelSpec
+from reference import batch_filter, max_relative_difference
+from test_stream_exactness import FAMILIES, N_TRAIN, RTOL, with_gaps
 
 START = datetime(2026, 5, 4, tzinfo=timezone.utc)
 INTERVAL_S = 900.0
@@ -225,3 +229,60 @@ def test_readings_ahead_of_the_clock_end_a_run_before_them(brackenholt):
     clock[held:] -= 2 * 3600.0  # two hours behind: beyond the default tolerance of an hour
     run = advance_quiet(feed, history.epoch_s[i:], history.values[i:], clock)
     assert run is not None and run.count == held
+
+
+N_STREAM = 1500  # long enough for the slowest family (the airline model) to reach its steady state
+
+
+def exactness_cases():
+    """The families of tests/test_stream_exactness.py, streamed for longer."""
+    n = N_TRAIN + N_STREAM
+    for i, (name, spec, kwargs) in enumerate(FAMILIES):
+        yield pytest.param(spec, simulate_arima(n, seed=100 + i, **kwargs), id=name)
+    yield pytest.param(ModelSpec((1, 0, 0), (0, 1, 1, 4), "n"),
+                       simulate_arima(n, ar=[0.5], seasonal_ma=[-0.5], seasonal_d=1, period=4, mean=40.0, seed=7),
+                       id="SARIMA(1,0,0)(0,1,1)_4")
+    yield pytest.param(ModelSpec((0, 1, 1), (0, 1, 1, 12), "n"),
+                       simulate_arima(n, ma=[-0.4], d=1, seasonal_ma=[-0.6], seasonal_d=1, period=12, seed=8),
+                       id="SARIMA(0,1,1)(0,1,1)_12 (airline)")
+
+
+@pytest.mark.parametrize("spec, series", list(exactness_cases()))
+def test_the_quiet_scan_equals_statsmodels_batch_filter(spec, series):
+    """The scan loop of the quiet runs, stretch by stretch between the gaps, against statsmodels'
+    SARIMAX ``filter()`` with the fitted parameters (the families of the exactness table, with
+    single gaps and a run of 10): forecasts, innovations and z to 1e-8 relative."""
+    y = with_gaps(series)
+    model = fit(y[:N_TRAIN], spec)
+    stream = model.stream()
+    forecast = np.full(N_STREAM, np.nan)
+    z = np.full(N_STREAM, np.nan)
+    scanned, i = 0, 0
+    while i < N_STREAM:
+        stretch = y[N_TRAIN + i:]
+        finite = int(np.argmin(np.isfinite(stretch))) if not np.isfinite(stretch).all() else stretch.size
+        if stream.is_steady and stream.regression is None and finite >= 2:
+            scan = _scan_function(stream.system, False, False, False)
+            taken, a, forecasts, zs, _, _ = scan(stretch[:finite].tolist(), stream._a_tuple, stream._gain,
+                                                 stream._d_const, stream.step, stream._sqrtF_ss, math.inf,
+                                                 (0.0,) * 10, (None, 0, 0.0, 0.0, 0.0, None, 0.0))
+            assert taken == finite
+            forecast[i:i + taken], z[i:i + taken] = forecasts, zs
+            stream._a_tuple, stream._t = a, stream.step + taken
+            scanned, i = scanned + taken, i + taken
+        else:
+            step = stream.update(y[N_TRAIN + i])
+            forecast[i], z[i] = step.forecast, step.z
+            i += 1
+    assert scanned > N_STREAM // 3, "the scan took too little of the series to be tested"
+    # Reference: statsmodels SARIMAX.filter over the same series and parameters (forecasts and
+    # standardized_forecasts_error), as in tests/test_stream_exactness.py.
+    ref = batch_filter(y, model)
+    observed = np.isfinite(y[N_TRAIN:])
+    ref_sd = np.sqrt(ref.forecasts_error_cov[0, 0, N_TRAIN:])
+    assert max_relative_difference(forecast, ref.forecasts[0, N_TRAIN:]) <= RTOL
+    error = y[N_TRAIN:] - forecast
+    assert max_relative_difference(error[observed], ref.forecasts_error[0, N_TRAIN:][observed],
+                                   scale=ref_sd[observed]) <= RTOL
+    assert max_relative_difference(z[observed], ref.standardized_forecasts_error[0, N_TRAIN:][observed],
+                                   scale=1.0) <= RTOL
