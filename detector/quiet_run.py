@@ -92,7 +92,7 @@ def _covered(feed: Any) -> bool:
         return False
     mon = feed.monitor
     stream = mon.stream
-    if not stream.is_steady or stream.regression is not None:
+    if not stream.is_steady:
         return False
     if not COVERED_RULES.issuperset(mon.rules):
         return False
@@ -143,7 +143,7 @@ def _limit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np
 
 
 _SCAN_HEAD = """\
-def scan(values, a, gain, d, t, sqrt_f, z_limit, cusum, flat):
+def scan(values, intercepts, a, gain, d, t, sqrt_f, z_limit, cusum, flat):
     {unpack_a} = a
     {unpack_gain} = gain
     s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls, k, h, clip = cusum
@@ -152,7 +152,7 @@ def scan(values, a, gain, d, t, sqrt_f, z_limit, cusum, flat):
     zs = []
     keep_forecast = forecasts.append
     keep_z = zs.append
-    for y in values:
+    for {loop}:
         f = {forecast}
         v = y - f
         z = v / sqrt_f
@@ -205,11 +205,13 @@ _SCAN_CUSUM_COMMIT = """\
 _compiled_scans: dict[str, Any] = {}
 
 
-def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool) -> Any:
+def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool, calendar: bool = False) -> Any:
     """The scan loop for this model and these rules, compiled once (the steady step written inline,
-    :func:`~leadline.detector.stream.steady_step_source`)."""
+    :func:`~leadline.detector.stream.steady_step_source`); with ``calendar`` d_t comes per slot
+    from ``intercepts``, else it is the constant ``d``."""
     unpack_a, unpack_gain, forecast, next_state = steady_step_source(system)
-    source = _SCAN_HEAD.format(unpack_a=unpack_a, unpack_gain=unpack_gain, forecast=forecast)
+    source = _SCAN_HEAD.format(unpack_a=unpack_a, unpack_gain=unpack_gain, forecast=forecast,
+                               loop="y, d in zip(values, intercepts)" if calendar else "y in values")
     if cusum:
         source += _SCAN_CUSUM.format(clipped="(clip if z > clip else (-clip if z < -clip else z))" if clip else "z")
     if flat:
@@ -227,7 +229,8 @@ def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool) -> Any:
     return function
 
 
-def _scan(mon: Any, values: list[float], count: int, z_limit: float) -> tuple[int, tuple, list, list, tuple, tuple]:
+def _scan(mon: Any, values: list[float], count: int, z_limit: float,
+          intercepts: list[float] | None = None) -> tuple[int, tuple, list, list, tuple, tuple]:
     """Step the filter, the CUSUM and the flatline run over up to ``count`` readings.
 
     Stops before the first reading with |z| >= ``z_limit``, a CUSUM signal or
@@ -242,9 +245,9 @@ def _scan(mon: Any, values: list[float], count: int, z_limit: float) -> tuple[in
     flat_in = (*flat.run_state(), flat.tolerance, flat.half_width, flat.habits, flat._log_limit) \
         if flat is not None else (None, 0, 0.0, 0.0, 0.0, None, 0.0)
     scan = _scan_function(stream.system, cusum is not None, cusum is not None and cusum.clip_abs_z is not None,
-                          flat is not None)
+                          flat is not None, intercepts is not None)
     taken, a, forecasts, zs, cusum_state, flat_state = scan(
-        values[:count], stream._a_tuple, stream._gain, stream._d_const, stream.step, stream._sqrtF_ss, z_limit,
+        values[:count], intercepts, stream._a_tuple, stream._gain, stream._d_const, stream.step, stream._sqrtF_ss, z_limit,
         cusum_in, flat_in)
     return (taken, a, forecasts, zs, cusum_state if cusum is not None else (),
             flat_state if flat is not None else ())
@@ -293,23 +296,34 @@ def advance_quiet(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoc
     mon = feed.monitor
     z_limit = _z_limit(mon)
     ys = values[:count].tolist()
-    scanned = _scan(mon, ys, count, z_limit)
+    stream = mon.stream
+    intercepts = calendar = None
+    if stream.regression is not None:
+        # d_t and x_t' beta slot by slot, as the steps ask for them; the cache is put back until
+        # the run's length is known
+        cache = stream.intercept_cache()
+        intercepts, calendar = stream.intercepts(count)
+        stream.restore_intercept_cache(cache)
+    scanned = _scan(mon, ys, count, z_limit, intercepts)
     taken = scanned[0]
     if mon.noise_burst is not None and taken:
         burst_ok = mon.noise_burst.quiet_run_length(scanned[3])
         if burst_ok < taken:
-            scanned = _scan(mon, ys, burst_ok, z_limit)
+            scanned = _scan(mon, ys, burst_ok, z_limit, intercepts)
             taken = scanned[0]
     checks = None
     if feed.settings.diagnostics_refit and taken:
         checks = _diagnostics_ahead(feed, scanned[3])
         if checks[0] is not None:  # a check falls due and finds the fit degraded: end the run there
-            scanned = _scan(mon, ys, checks[0], z_limit)
+            scanned = _scan(mon, ys, checks[0], z_limit, intercepts)
             taken = scanned[0]
             checks = _diagnostics_ahead(feed, scanned[3])
     if taken < MIN_RUN:
         return None
-    return _commit(feed, epoch_s[:taken], values[:taken], scanned, checks)
+    if intercepts is not None:
+        stream.intercepts(taken)  # the cache as the run's steps leave it
+        calendar = np.asarray(calendar[:taken])
+    return _commit(feed, epoch_s[:taken], values[:taken], scanned, checks, calendar)
 
 
 def _diagnostics_ahead(feed: Any, zs: list[float]) -> tuple[int | None, int, dict | None]:
@@ -325,7 +339,7 @@ def _diagnostics_ahead(feed: Any, zs: list[float]) -> tuple[int | None, int, dic
 
 
 def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple,
-            checks: tuple[int | None, int, dict | None] | None) -> QuietRun:
+            checks: tuple[int | None, int, dict | None] | None, calendar: np.ndarray | None) -> QuietRun:
     """Leave the feed as the per-reading path leaves it after these readings."""
     taken, a, forecasts, zs, cusum_state, flat_state = scanned
     mon = feed.monitor
@@ -344,7 +358,8 @@ def _commit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, scanned: tuple,
     mon.readings += taken
     if mon.stale is not None:
         mon.stale.last_seen = last_time
-    mon.level.observe_many(values)
+    # the level condition keeps readings less the model's calendar part, as FeedMonitor._process does
+    mon.level.observe_many(values if calendar is None else values - calendar)
     mon._shock_candidate = None
     mon._last_absorbed = True
     mon._history.extend(z, stream._sqrtF_ss, True)

@@ -195,6 +195,7 @@ class Stream:
         self._d_const = system.obs_intercept + self._level_offset
         self._d_start = 0
         self._d_block: list[float] = []
+        self._x_block: list[float] = []  # x_t' beta of the same slots as _d_block
         self._d_len = 0
         self._step_fn = None
         self._steady = False
@@ -239,9 +240,34 @@ class Stream:
         if 0 <= i < self._d_len:
             return self._d_block[i]
         self._d_start = t
-        self._d_block = (self._d_const + self.regression.offsets(t, INTERCEPT_BLOCK)).tolist()
+        offsets = self.regression.offsets(t, INTERCEPT_BLOCK)
+        self._x_block = offsets.tolist()
+        self._d_block = (self._d_const + offsets).tolist()
         self._d_len = len(self._d_block)
         return self._d_block[0]
+
+    def calendar_part(self, t: int) -> float:
+        """x_t' beta of slot t (0.0 without calendar terms), from the same block as d_t."""
+        if self.regression is None:
+            return 0.0
+        self._obs_intercept(t)
+        return self._x_block[t - self._d_start]
+
+    def intercepts(self, count: int) -> tuple[list[float], list[float]]:
+        """d_t and x_t' beta of the next ``count`` slots, asked for slot by slot as
+        :meth:`update` asks (the block cache is left as those steps leave it)."""
+        d, x = [], []
+        for t in range(self._t, self._t + count):
+            d.append(self._obs_intercept(t))
+            x.append(self._x_block[t - self._d_start])
+        return d, x
+
+    def intercept_cache(self) -> tuple:
+        """The block cache of d_t, to put back with :meth:`restore_intercept_cache`."""
+        return self._d_start, self._d_block, self._x_block, self._d_len
+
+    def restore_intercept_cache(self, cache: tuple) -> None:
+        self._d_start, self._d_block, self._x_block, self._d_len = cache
 
     def _enter_steady(self) -> None:
         if self._step_fn is None:

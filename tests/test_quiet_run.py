@@ -1,10 +1,10 @@
 """The replay's fast path (quiet runs) against the per-reading engine: the same states, the same incidents.
 
-The invented Brackenholt district has seven feeds, each with something for
+The invented Brackenholt district has eight feeds, each with something for
 the rules to find: a wild reading, a level shift and its return, a frozen
 quantized transmitter, a burst of noise, an out-of-range reading, gaps,
 late and off-grid readings, jittered timestamps, a change of dynamics that
-the diagnostics checks find. The reference is the
+the diagnostics checks find, a daily cycle fitted with calendar terms. The reference is the
 engine taking every reading one by one (statsmodels fits both paths'
 models); the fast path must leave every feed in the same state, checkpoint
 byte for byte, and give the same events, models and evidence.
@@ -30,6 +30,7 @@ from leadline.detector.fitting import fit
 from leadline.detector.quiet_run import _scan_function, advance_quiet, learn_quiet
 from leadline.detector.readings import Reading
 from leadline.detector.rules import MonitorConfig
+from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.simulate import simulate_arima
 from leadline.detector.spec import ModelSpec
 from reference import batch_filter, max_relative_difference
@@ -47,7 +48,7 @@ def _history(feed_id: str, values: np.ndarray, epochs: np.ndarray | None = None)
 
 
 def site() -> tuple[list[FeedHistory], dict[str, FeedSettings]]:
-    """The seven Brackenholt feeds and their settings (seeded)."""
+    """The eight Brackenholt feeds and their settings (seeded)."""
     base = FeedSettings(spec=ModelSpec(order=(1, 0, 0)), interval_s=INTERVAL_S, train_points=300,
                         min_train_points=100, refit_window_points=600, threshold_mode="sigma")
     feeds, settings = [], {}
@@ -100,6 +101,14 @@ def site() -> tuple[list[FeedHistory], dict[str, FeedSettings]]:
                              simulate_arima(N - 1000, ar=[0.7], mean=8.0, sigma=0.07, seed=20)])
     feeds.append(_history("brackenholt/spring/flow", spring))
     settings["brackenholt/spring/flow"] = replace(base, refit_every_s=None, threshold_mode="budget")
+    # a daily cycle, fitted with calendar terms on the local clock of an invented site's zone:
+    # d_t changes every slot, and the level condition keeps readings less the cycle
+    hours = (START.timestamp() + INTERVAL_S * np.arange(N)) / 3600.0
+    kiln = simulate_arima(N, ar=[0.5], mean=40.0, sigma=0.2, seed=21) + 3.0 * np.sin(2 * np.pi * hours / 24.0)
+    kiln[1250:1300] += 2.5
+    feeds.append(_history("brackenholt/kiln/temperature", kiln))
+    settings["brackenholt/kiln/temperature"] = replace(
+        base, calendar=CalendarTerms(periods=(SeasonalPeriod(86400.0, 2),), timezone="Europe/Dublin"))
     return feeds, settings
 
 
@@ -135,7 +144,7 @@ def _drive(history: FeedHistory, settings: FeedSettings, fast: bool, stops: set[
     return states, runs
 
 
-@pytest.mark.parametrize("index", range(7))
+@pytest.mark.parametrize("index", range(8))
 def test_a_quiet_run_leaves_the_feed_as_the_readings_one_by_one_do(brackenholt, index):
     feeds, settings = brackenholt
     history = feeds[index]
@@ -263,7 +272,7 @@ def test_the_quiet_scan_equals_statsmodels_batch_filter(spec, series):
         finite = int(np.argmin(np.isfinite(stretch))) if not np.isfinite(stretch).all() else stretch.size
         if stream.is_steady and stream.regression is None and finite >= 2:
             scan = _scan_function(stream.system, False, False, False)
-            taken, a, forecasts, zs, _, _ = scan(stretch[:finite].tolist(), stream._a_tuple, stream._gain,
+            taken, a, forecasts, zs, _, _ = scan(stretch[:finite].tolist(), None, stream._a_tuple, stream._gain,
                                                  stream._d_const, stream.step, stream._sqrtF_ss, math.inf,
                                                  (0.0,) * 10, (None, 0, 0.0, 0.0, 0.0, None, 0.0))
             assert taken == finite

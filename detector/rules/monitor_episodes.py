@@ -123,10 +123,8 @@ class LevelEpisodes:
         The level condition compares levels, not times of day: the readings
         it keeps have the model's daily and weekly cycles taken out.
         """
-        regression = getattr(self.stream, "regression", None)
-        if regression is None:
-            return 0.0
-        return float(regression.offsets(self.stream.step, 1)[0])
+        part = getattr(self.stream, "calendar_part", None)
+        return 0.0 if part is None else part(self.stream.step)
 
     def _level_verdict(self, verdict: Assessment) -> Assessment:
         level = self.level
