@@ -219,13 +219,22 @@ def empirical_cusum_h(z: np.ndarray, k: float, rate: float, h_start: float, seed
         draws = _clip(_stationary_draws(z, steps, chains, block, rng), clip_abs_z)
 
     def rate_at(h: float) -> float:
+        # cusum_step's max(0, S+ + z - k), max(0, S- - z - k), the same operations in place
         s_hi = np.zeros(chains)
         s_lo = np.zeros(chains)
+        hit = np.empty(chains, dtype=bool)
+        hit_lo = np.empty(chains, dtype=bool)
         signals = 0
         for row in draws:
-            s_hi = np.maximum(0.0, s_hi + row - k)
-            s_lo = np.maximum(0.0, s_lo - row - k)
-            hit = (s_hi > h) | (s_lo > h)
+            np.add(s_hi, row, out=s_hi)
+            np.subtract(s_hi, k, out=s_hi)
+            np.maximum(0.0, s_hi, out=s_hi)
+            np.subtract(s_lo, row, out=s_lo)
+            np.subtract(s_lo, k, out=s_lo)
+            np.maximum(0.0, s_lo, out=s_lo)
+            np.greater(s_hi, h, out=hit)
+            np.greater(s_lo, h, out=hit_lo)
+            np.logical_or(hit, hit_lo, out=hit)
             if hit.any():
                 signals += int(hit.sum())
                 s_hi[hit] = 0.0
