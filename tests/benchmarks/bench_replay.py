@@ -2,15 +2,15 @@
 
 Run: ``python tests/benchmarks/bench_replay.py [--feeds 1000] [--days 30] [--sample 50] [--whole] [--quick]``
 
-Writes N invented feeds x D days of one-minute readings (seeded AR(1), the
-Heronsgate district, one long-layout CSV file in time order) and a config
+Builds N invented feeds x D days of one-minute readings (seeded AR(1), each
+feed its own seed, the Heronsgate district; with ``--whole`` also written
+as one long-layout CSV file in time order) and a config
 with a fixed AR(1) model, the default learning window of 2,000 readings, a
 daily refit and the default budget limits (0.2 false alarms per feed-week;
 ``--mode sigma`` for the fixed sigma limits, which raise far more episodes
 on the same feeds and so send more readings through the per-reading path).
 Then, in one run:
 
-* the history read (CSV parsing), timed on its own;
 * the fits of the ``--sample`` feeds, made once (the fast path's first run)
   and timed: they cost the same on both paths and are then taken from a
   cache, so that the timed runs measure the engine alone;
@@ -19,13 +19,16 @@ Then, in one run:
   ``Engine.process``, the ticks of the merged history) and ``fast=True``
   (feed by feed, quiet runs taken at once), side by side; the ratios are
   printed for the engine alone and with the fits added back;
-* with ``--whole`` (and ``--quick``), ``leadline replay``'s own path over
-  all N feeds with real fits, 1 and 2 processes.
+* the time of all N feeds at the sample's rates (feeds are independent:
+  the cost of a feed does not depend on the others);
+* with ``--whole`` (and ``--quick``): the history read (CSV parsing), and
+  ``leadline replay``'s own path over all N feeds with real fits, 1 and 2
+  processes.
 
 Memory: the tracemalloc peak and the growth of the resident set size of the
 fast replay (run and results, not the store write) beyond the history
 arrays, per 1,000 feeds: the slope between half the sample and all of it,
-each in a fresh process, fits from the cache.
+each in a fresh process, fits from the cache, scaled to 1,000 feeds.
 """
 
 from __future__ import annotations
@@ -46,6 +49,7 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 import numpy as np  # noqa: E402
 
 from leadline.adapters.config.file import load_config  # noqa: E402
+from leadline.adapters.replay.history import FeedHistory  # noqa: E402
 from leadline.adapters.replay.runner import replay_group  # noqa: E402
 from leadline.adapters.replay.session import history_for, replay_settings, run_replay  # noqa: E402
 from leadline.adapters.replay.writer import write_results  # noqa: E402
@@ -73,22 +77,41 @@ workers = 1
 """
 
 
-def write_history(folder: Path, feeds: int, days: int, mode: str = "budget") -> int:
-    rng = np.random.default_rng(20260202)
+def feed_values(index: int, days: int) -> np.ndarray:
+    """Feed ``index``'s one-minute readings (seeded per feed, so that any subset is the same)."""
+    rng = np.random.default_rng([20260202, index])
     n = days * 1440
     phi, sigma = 0.7, 0.1
-    x = np.zeros((feeds, n))
-    shocks = rng.normal(0.0, sigma, (feeds, n))
+    shocks = rng.normal(0.0, sigma, n)
+    x = np.empty(n)
+    x[0] = shocks[0]
     for t in range(1, n):
-        x[:, t] = phi * x[:, t - 1] + shocks[:, t]
-    x += 3.0 + np.arange(feeds)[:, None] * 0.01
-    names = [f"heronsgate/{i:04d}/level" for i in range(feeds)]
-    with (folder / "history.csv").open("w") as handle:
-        handle.write("timestamp,feed,value\n")
-        for t in range(n):
-            stamp = (START + timedelta(minutes=t)).isoformat()
-            handle.write("".join(f"{stamp},{names[i]},{x[i, t]:.5f}\n" for i in range(feeds)))
+        x[t] = phi * x[t - 1] + shocks[t]
+    return np.round(x + 3.0 + index * 0.01, 5)  # as written to the CSV
+
+
+def feed_name(index: int) -> str:
+    return f"heronsgate/{index:04d}/level"
+
+
+def histories(feeds: int, days: int) -> dict[str, FeedHistory]:
+    """The first ``feeds`` feeds as the replay holds them (what reading the CSV gives)."""
+    epochs = START.timestamp() + 60.0 * np.arange(days * 1440)
+    return {feed_name(i): FeedHistory(feed_name(i), epochs.copy(), feed_values(i, days)) for i in range(feeds)}
+
+
+def write_site(folder: Path, feeds: int, days: int, mode: str = "budget", csv: bool = True) -> int:
+    """The config and (with ``csv``) the history of all feeds as one long-layout CSV in time order."""
     (folder / "leadline.toml").write_text(CONFIG.format(mode=mode))
+    n = days * 1440
+    if csv:
+        x = np.stack([feed_values(i, days) for i in range(feeds)])
+        names = [feed_name(i) for i in range(feeds)]
+        with (folder / "history.csv").open("w") as handle:
+            handle.write("timestamp,feed,value\n")
+            for t in range(n):
+                stamp = (START + timedelta(minutes=t)).isoformat()
+                handle.write("".join(f"{stamp},{names[i]},{x[i, t]:.5f}\n" for i in range(feeds)))
     return feeds * n
 
 
@@ -123,10 +146,9 @@ class CachedRefit:
         return result
 
 
-def time_paths(history, settings, sample: int) -> tuple[float, int, list[tuple], dict]:
-    """Fit seconds, fits, (path, seconds, events, quiet readings, readings) of both paths on the
-    sample, and the fits kept."""
-    feeds = [history.feeds[f] for f in sorted(history.feeds)[:sample]]
+def time_paths(feeds: list[FeedHistory], settings) -> tuple[float, int, list[tuple], dict]:
+    """Fit seconds, fits, (path, seconds, events, quiet readings, readings) of both paths on
+    ``feeds``, and the fits kept."""
     refit = CachedRefit()
     replay_group(feeds, settings, refit=refit, fast=True)  # the fits, timed once
     fit_s, fitted = refit.seconds, refit.misses
@@ -152,17 +174,16 @@ def time_replay(config_path: Path, history, workers: int, url: str) -> tuple[flo
     return time.perf_counter() - began, run.summary.events
 
 
-def memory(config_path: Path, cache_path: Path, feeds: int) -> tuple[int, int, int]:
-    """(history bytes of the feeds, tracemalloc peak, RSS growth) of the fast replay of the first ``feeds``
-    feeds, fits from the cache (loaded, with the whole history, before the measure starts)."""
+def memory(config_path: Path, cache_path: Path, feeds: int, days: int) -> tuple[int, int, int]:
+    """(history bytes of the feeds, tracemalloc peak, RSS growth) of the fast replay of the first
+    ``feeds`` feeds, fits from the cache (loaded, with the histories, before the measure starts)."""
     import pickle
 
     config = load_config(config_path)
-    history = history_for(config)
-    settings = replay_settings(config, list(history.feeds))
+    chosen = list(histories(feeds, days).values())
+    settings = replay_settings(config, [h.feed_id for h in chosen])
     refit = CachedRefit()
     refit.fits = pickle.loads(cache_path.read_bytes())
-    chosen = [history.feeds[f] for f in sorted(history.feeds)[:feeds]]
     input_bytes = sum(h.epoch_s.nbytes + h.values.nbytes for h in chosen)
     before = rss_bytes()
     tracemalloc.start()
@@ -176,7 +197,7 @@ def memory(config_path: Path, cache_path: Path, feeds: int) -> tuple[int, int, i
     return input_bytes, peak, grown
 
 
-def memory_slope(folder: Path, cache_path: Path, sample: int) -> None:
+def memory_slope(folder: Path, cache_path: Path, sample: int, days: int) -> None:
     """Memory per 1,000 feeds beyond the input: the slope between half the sample and all of it.
 
     Each size runs in a fresh process (the peak and RSS of one run are not
@@ -190,8 +211,8 @@ def memory_slope(folder: Path, cache_path: Path, sample: int) -> None:
     measured = {}
     for n in sizes:
         code = ("import sys; sys.path.insert(0, %r); import bench_replay as b, pathlib; "
-                "print(*b.memory(pathlib.Path(%r), pathlib.Path(%r), %d))"
-                % (str(Path(__file__).parent), str(folder / "leadline.toml"), str(cache_path), n))
+                "print(*b.memory(pathlib.Path(%r), pathlib.Path(%r), %d, %d))"
+                % (str(Path(__file__).parent), str(folder / "leadline.toml"), str(cache_path), n, days))
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
         measured[n] = [int(x) for x in out.split()[-3:]]
     for n in sizes:
@@ -219,29 +240,35 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     if args.quick:
         args.feeds, args.days, args.sample, args.whole = 20, 3, 20, True
+    sample = min(args.sample, args.feeds)
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        readings = write_history(folder, args.feeds, args.days, args.mode)
+        readings = write_site(folder, args.feeds, args.days, args.mode, csv=args.whole)
         config_path = folder / "leadline.toml"
-        print(f"{args.feeds} feeds x {args.days} days of 1-minute readings = {readings} readings "
-              f"({(folder / 'history.csv').stat().st_size / 1e6:.0f} MB of CSV), {args.mode} limits; "
-              f"cores: {os.cpu_count()}")
         config = load_config(config_path)
-        began = time.perf_counter()
-        history = history_for(config)
-        read_s = time.perf_counter() - began
-        print(f"  history read (CSV parsing)        {read_s:8.1f} s  {readings / read_s:10.0f} readings/s")
-        settings = replay_settings(config, list(history.feeds))
-        fit_s, fits, rows, refit_cache = time_paths(history, settings, args.sample)
+        print(f"{args.feeds} feeds x {args.days} days of 1-minute readings = {readings} readings, "
+              f"{args.mode} limits, daily refits; cores: {os.cpu_count()}")
+        feeds = list(histories(sample, args.days).values())
+        settings = replay_settings(config, [h.feed_id for h in feeds])
+        fit_s, fits, rows, refit_cache = time_paths(feeds, settings)
         n = rows[0][4]
-        print(f"  side by side on {min(args.sample, args.feeds)} feeds ({n} readings; {fits} fits, "
-              f"{fit_s:.1f} s, {fit_s / fits * 1e3:.0f} ms a fit, timed once and then taken from a cache):")
+        print(f"  side by side on {sample} of the feeds ({n} readings; {fits} fits, {fit_s:.1f} s, "
+              f"{fit_s / fits * 1e3:.0f} ms a fit, made once and then taken from a cache):")
         base_engine, base_all = rows[0][1], rows[0][1] + fit_s
         for name, seconds, events, quiet, _ in rows:
             print(f"    {name:24s} engine {seconds:7.1f} s  {seconds / n * 1e6:6.2f} us/reading  "
                   f"x{base_engine / seconds:6.2f};  with the fits {n / (seconds + fit_s):8.0f} readings/s "
                   f"x{base_all / (seconds + fit_s):5.2f}  ({events} events, {quiet / n:.0%} in quiet runs)")
+        per_reading_s, fast_s = rows[0][1] / n, rows[1][1] / n
+        print(f"  all {args.feeds} feeds at these rates: engine {readings * per_reading_s / 3600:.2f} h "
+              f"per-reading, {readings * fast_s / 60:.1f} min fast; fits {fit_s / sample * args.feeds / 3600:.2f} h "
+              f"on one core on either path")
         if args.whole:
+            began = time.perf_counter()
+            history = history_for(config)
+            read_s = time.perf_counter() - began
+            print(f"  history read (CSV parsing, {(folder / 'history.csv').stat().st_size / 1e6:.0f} MB) "
+                  f"{read_s:8.1f} s  {readings / read_s:10.0f} readings/s")
             for workers in (1, 2):
                 seconds, events = time_replay(config_path, history, workers,
                                               f"sqlite:///{folder / f'replay{workers}.db'}")
@@ -251,7 +278,7 @@ def main(argv=None) -> int:
 
         cache_path = folder / "fits.pickle"
         cache_path.write_bytes(pickle.dumps(refit_cache))
-        memory_slope(folder, cache_path, min(args.sample, args.feeds))
+        memory_slope(folder, cache_path, sample, args.days)
     return 0
 
 
