@@ -64,7 +64,7 @@ from .feed_settings import FeedSettings
 from .feed_state import encode_time
 from .fitting import FittedModel
 from .incidents import IncidentGrouper
-from .grid import GridCounts, GridCursor, infer_interval_s
+from .grid import GridCounts, GridCursor, grid_origin, infer_interval_s
 from .readings import Reading
 from .rules import AlarmLimits, FeedMonitor, MonitorConfig, per_point_rate
 from .seasonality import CalendarTerms
@@ -76,13 +76,6 @@ STATES = ("learning", "fitting", "watching")
 
 def _utc(epoch_s: float) -> datetime:
     return datetime.fromtimestamp(float(epoch_s), tz=timezone.utc)
-
-
-def _grid_origin(epochs: np.ndarray, interval_s: float) -> float:
-    """The earliest time, moved to the median phase of all timestamps on the grid."""
-    t0 = float(epochs.min())
-    phase = np.mod(epochs - t0 + interval_s / 2.0, interval_s) - interval_s / 2.0
-    return t0 + float(np.median(phase))
 
 
 @dataclass
@@ -226,16 +219,29 @@ class FeedLifecycle:
             self.next_learning_check = self.raw_real + 1
             return
         interval = s.interval_s if s.interval_s is not None else infer_interval_s(distinct)
-        self.cursor = GridCursor(_grid_origin(epochs, interval), interval, s.grid_tolerance)
+        self.cursor = GridCursor(grid_origin(epochs, interval), interval, s.grid_tolerance)
         values = self.raw_values
         self.raw_epochs, self.raw_values = array("d"), array("d")
-        self._replaying_raw = True
-        try:
-            times = epochs.tolist()
-            for i in np.argsort(epochs, kind="stable").tolist():
-                self._place(times[i], values[i], _utc(times[i]), out)
-        finally:
-            self._replaying_raw = False
+        order = np.argsort(epochs, kind="stable")
+        if self.counter is None:  # in time order on the new grid at once, as _place one by one
+            values = np.asarray(values, dtype=float)[order]
+            slots = self.cursor.place_sorted(epochs[order])
+            placed = slots >= 0
+            if placed.any():  # the slots between placed readings are missing (NaN)
+                window = np.full(int(slots[placed][-1]) + 1, np.nan)
+                window[slots[placed]] = values[placed]
+                self.window, self.next_slot = array("d", window.tobytes()), window.size
+                self.window_valid = int(np.count_nonzero(np.isfinite(values[placed])))
+                seen = np.flatnonzero(placed & ~np.isnan(values))
+                self.last_seen = _utc(epochs[order][seen[-1]]) if seen.size else self.last_seen
+        else:
+            self._replaying_raw = True
+            try:
+                times = epochs.tolist()
+                for i in order.tolist():
+                    self._place(times[i], values[i], _utc(times[i]), out)
+            finally:
+                self._replaying_raw = False
         self.last_time, self.last_value = ts, value  # the latest arrival, not the latest in time
         self._maybe_end_learning(out)
 

@@ -70,6 +70,13 @@ def infer_interval_s(epoch_s: np.ndarray) -> float:
     return float(np.median(diffs))
 
 
+def grid_origin(epochs: np.ndarray, interval_s: float) -> float:
+    """The earliest time, moved to the median phase of all timestamps on the grid."""
+    t0 = float(epochs.min())
+    phase = np.mod(epochs - t0 + interval_s / 2.0, interval_s) - interval_s / 2.0
+    return t0 + float(np.median(phase))
+
+
 class GridCursor:
     """Places readings one at a time, as a live feed delivers them.
 
@@ -124,6 +131,26 @@ class GridCursor:
         self.counts.placed += 1
         self.next_slot = slot + 1
         return slot
+
+    def place_sorted(self, epoch_s: np.ndarray) -> np.ndarray:
+        """:meth:`place` for many readings in time order at once: their slots (-1 for a dropped
+        one), with the counts and ``next_slot`` as placing them one by one leaves them."""
+        slot, offset = self._run_offsets(epoch_s)
+        on_grid = offset <= self.tolerance
+        # next_slot - 1 before each reading: the largest on-grid slot before it (the input is sorted)
+        before = np.maximum.accumulate(np.concatenate([[self.next_slot - 1.0], np.where(on_grid, slot, -np.inf)[:-1]]))
+        placed = on_grid & (slot > before)
+        kept = on_grid & ~placed
+        c = self.counts
+        c.off_grid += int(np.count_nonzero(~on_grid))
+        c.duplicate += int(np.count_nonzero(kept & (slot == before)))
+        c.out_of_order += int(np.count_nonzero(kept & (slot != before)))
+        c.snapped += int(np.count_nonzero(placed & (offset > SNAP_NOTICE_FRACTION)))
+        c.missing += int(np.sum(slot[placed] - before[placed] - 1.0))
+        c.placed += int(np.count_nonzero(placed))
+        if placed.any():
+            self.next_slot = int(slot[placed][-1]) + 1
+        return np.where(placed, slot, -1).astype(np.int64)
 
     def _run_offsets(self, epoch_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         position = (np.asarray(epoch_s, dtype=float) - self.origin_epoch_s) / self.interval_s

@@ -46,6 +46,7 @@ import json
 import math
 import struct
 import zipfile
+from functools import lru_cache
 from typing import Any, Protocol
 
 import numpy as np
@@ -77,6 +78,13 @@ class Regression(Protocol):
     def offsets(self, start: int, count: int) -> np.ndarray: ...
 
     def to_dict(self) -> dict[str, Any]: ...
+
+
+@lru_cache(maxsize=64)
+def interval_quantile(level: float) -> float:
+    """The standard normal quantile of the two-sided ``level`` interval (cached: every new
+    model's stream asks for the same one, and scipy's ``norm.ppf`` is slow to call)."""
+    return float(norm.ppf(0.5 + level / 2.0))
 
 
 def steady_step_source(system: LinearSystem) -> tuple[str, str, str, str]:
@@ -183,7 +191,7 @@ class Stream:
         self.model_version = model_version
         self.regression = regression
         self.meta = dict(meta or {})
-        self._quantile = float(norm.ppf(0.5 + level / 2.0))
+        self._quantile = interval_quantile(self.level)
         self._a = np.array(state, dtype=float)
         self._P = np.array(cov, dtype=float)
         self._t = int(step)

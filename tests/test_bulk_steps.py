@@ -147,3 +147,21 @@ def test_noise_burst_run_stops_before_the_step_that_raises():
         verdict = rule.assess(Innovation(0, 0.0, 0.0, value, 1.0, value, -1.0, 1.0, 0.95, True))
     # the step the bulk check stopped at is the first the rule itself raises at (or within 1e-9 of it)
     assert verdict.severity == "alarm" or math.isclose(rule.statistic, rule.limit(), rel_tol=1e-9)
+
+
+@pytest.mark.parametrize("next_slot", [0, 7])
+def test_grid_place_sorted_equals_place(next_slot):
+    origin, interval = 1_780_000_000.0, 900.0
+    rng = np.random.default_rng(15)
+    epochs = origin + interval * np.arange(400) + rng.uniform(-200.0, 200.0, 400)
+    epochs[50] += 0.4 * interval  # off the grid
+    epochs = np.delete(epochs, np.s_[100:130])  # a gap: missing slots
+    epochs = np.sort(np.concatenate([epochs, epochs[[20, 21, 300]] + 5.0]))  # duplicates of placed slots
+    one, bulk = GridCursor(origin, interval, next_slot=next_slot), GridCursor(origin, interval, next_slot=next_slot)
+    slots = [one.place(epoch) for epoch in epochs.tolist()]
+    got = bulk.place_sorted(epochs)
+    assert got.tolist() == [-1 if slot is None else slot for slot in slots]
+    assert (bulk.next_slot, bulk.counts.as_dict()) == (one.next_slot, one.counts.as_dict())
+    counts = one.counts.as_dict()
+    assert counts["off_grid"] >= 1 and counts["duplicate"] >= 3 and counts["missing"] >= 30
+    assert next_slot == 0 or counts["out_of_order"] >= 1  # slots before the cursor's start

@@ -144,6 +144,17 @@ class _GroupReplay:
         return self.result
 
 
+def _reading_times(feeds: list[FeedHistory]) -> np.ndarray:
+    """The group's distinct reading times, sorted (the merged replay's clock ticks), built feed by
+    feed: feeds on one clock add nothing, and no array of all the group's readings is made."""
+    times = np.empty(0)
+    for feed in feeds:
+        epochs = feed.epoch_s
+        if not (epochs.size == times.size and np.array_equal(epochs, times)):
+            times = np.union1d(times, epochs)
+    return times
+
+
 class _FeedByFeed(_GroupReplay):
     """The same replay, one feed after another, quiet runs taken at once (:mod:`~leadline.detector.quiet_run`).
 
@@ -166,7 +177,7 @@ class _FeedByFeed(_GroupReplay):
             every: int = 100_000) -> GroupResult:
         feeds = list(feeds)
         self.result = GroupResult([f.feed_id for f in feeds])
-        times = np.unique(np.concatenate([f.epoch_s for f in feeds])) if feeds else np.empty(0)
+        times = _reading_times(feeds)
         self.next_progress = every
         for feed in feeds:
             self.engine = Engine(lambda feed_id: self.settings[feed_id])
