@@ -202,9 +202,6 @@ _SCAN_CUSUM_COMMIT = """\
         n_hi = n_hi + 1 if s_hi > 0 else 0
         n_lo = n_lo + 1 if s_lo > 0 else 0
 """
-_compiled_scans: dict[str, Any] = {}
-
-
 def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool, calendar: bool = False) -> Any:
     """The scan loop for this model and these rules, compiled once (the steady step written inline,
     :func:`~leadline.detector.stream.steady_step_source`); with ``calendar`` d_t comes per slot
@@ -219,14 +216,9 @@ def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool, calendar: b
     if cusum:
         source += _SCAN_CUSUM_COMMIT
     source += _SCAN_TAIL.format(unpack_a=unpack_a, next_state=next_state)
-    function = _compiled_scans.get(source)
-    if function is None:
-        if len(_compiled_scans) >= 1024:
-            _compiled_scans.clear()
-        namespace: dict[str, Any] = {"repeat_probability": repeat_probability, "log": math.log, "inf": math.inf}
-        exec(compile(source, "<leadline quiet scan>", "exec"), namespace)  # noqa: S102 - literals only
-        function = _compiled_scans[source] = namespace["scan"]
-    return function
+    namespace: dict[str, Any] = {"repeat_probability": repeat_probability, "log": math.log, "inf": math.inf}
+    exec(compile(source, "<leadline quiet scan>", "exec"), namespace)  # noqa: S102 - literals only
+    return namespace["scan"]
 
 
 def _scan(mon: Any, values: list[float], count: int, z_limit: float,
@@ -244,8 +236,13 @@ def _scan(mon: Any, values: list[float], count: int, z_limit: float,
     cusum_in = (*cusum.run_state(), cusum.k, cusum.h, cusum.clip_abs_z) if cusum is not None else (0.0,) * 10
     flat_in = (*flat.run_state(), flat.tolerance, flat.half_width, flat.habits, flat._log_limit) \
         if flat is not None else (None, 0, 0.0, 0.0, 0.0, None, 0.0)
-    scan = _scan_function(stream.system, cusum is not None, cusum is not None and cusum.clip_abs_z is not None,
-                          flat is not None, intercepts is not None)
+    key = (cusum is not None, cusum is not None and cusum.clip_abs_z is not None, flat is not None,
+           intercepts is not None)
+    # compiled once per model and rule set: kept with the stream, it goes when the model goes
+    scans = stream.__dict__.setdefault("_quiet_scans", {})
+    scan = scans.get(key)
+    if scan is None:
+        scan = scans[key] = _scan_function(stream.system, *key)
     taken, a, forecasts, zs, cusum_state, flat_state = scan(
         values[:count], intercepts, stream._a_tuple, stream._gain, stream._d_const, stream.step, stream._sqrtF_ss, z_limit,
         cusum_in, flat_in)

@@ -29,6 +29,7 @@ pool or a Dask cluster can send it back.
 
 from __future__ import annotations
 
+import json
 import logging
 import os
 from dataclasses import dataclass, field
@@ -43,6 +44,7 @@ from leadline.detector.evidence import EvidenceRecord, EvidenceRecorder
 from leadline.detector.quiet_run import MAX_RUN, advance_quiet, learn_quiet
 from leadline.detector.readings import Reading
 
+from ..store.coltypes import dumps_json
 from .history import FeedHistory, readings_of
 
 __all__ = ["ReplayedFit", "GroupResult", "replay_group", "single_blas_thread"]
@@ -53,18 +55,39 @@ logger = logging.getLogger("leadline.replay")
 @dataclass(frozen=True)
 class ReplayedFit:
     """One fit installed during a replay, as :meth:`EventStore.record_model` takes it (its
-    ``local_version`` numbered within the replay, remapped to the store's when written)."""
+    ``local_version`` numbered within the replay, remapped to the store's when written).
+
+    The parameters, limits and fit statistics are kept as compact JSON text
+    (a feed refitted daily has 30 of these a month, kept until the store is
+    written) and read back by the properties of the same names.
+    """
 
     feed_id: str
     local_version: int
     order: str
-    parameters: dict[str, Any]
-    thresholds: dict[str, Any]
-    fit_stats: dict[str, Any]
+    parameters_json: str
+    thresholds_json: str
+    fit_stats_json: str
     fitted_at: datetime
     window_start: datetime
     window_end: datetime
     reason: str
+
+    @property
+    def parameters(self) -> dict[str, Any]:
+        return json.loads(self.parameters_json)
+
+    @property
+    def thresholds(self) -> dict[str, Any]:
+        return json.loads(self.thresholds_json)
+
+    @property
+    def fit_stats(self) -> dict[str, Any]:
+        return json.loads(self.fit_stats_json)
+
+
+def _compact(value: Any) -> str:
+    return dumps_json(value)  # as the store will write it: numpy scalars and times made plain
 
 
 @dataclass
@@ -118,7 +141,8 @@ class _GroupReplay:
         version = self.versions.get(request.feed_id, 0) + 1
         self.versions[request.feed_id] = version
         self.result.models.append(ReplayedFit(
-            request.feed_id, version, fitted.spec.label, fitted.params, thresholds, fitted.summary(),
+            request.feed_id, version, fitted.spec.label, _compact(fitted.params), _compact(thresholds),
+            _compact(fitted.summary()),
             self.clock, _utc(request.epoch_s[0]), _utc(request.epoch_s[-1]), request.reason))
         self.handle(self.engine.install_model(request.feed_id, fitted, version, request.reason,
                                               thresholds=thresholds, request=request))
