@@ -143,7 +143,8 @@ def _limit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np
 
 
 _SCAN_HEAD = """\
-def scan(values, intercepts, a, gain, d, t, sqrt_f, z_limit, cusum, flat):
+def scan(values, intercepts, a, gain, d, t, sqrt_f, z_limit, cusum, flat, coefficients):
+    {unpack_coefficients}
     {unpack_a} = a
     {unpack_gain} = gain
     s_hi, s_lo, n_hi, n_lo, start_hi, start_lo, calls, k, h, clip = cusum
@@ -202,12 +203,24 @@ _SCAN_CUSUM_COMMIT = """\
         n_hi = n_hi + 1 if s_hi > 0 else 0
         n_lo = n_lo + 1 if s_lo > 0 else 0
 """
-def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool, calendar: bool = False) -> Any:
-    """The scan loop for this model and these rules, compiled once (the steady step written inline,
-    :func:`~leadline.detector.stream.steady_step_source`); with ``calendar`` d_t comes per slot
-    from ``intercepts``, else it is the constant ``d``."""
-    unpack_a, unpack_gain, forecast, next_state = steady_step_source(system)
-    source = _SCAN_HEAD.format(unpack_a=unpack_a, unpack_gain=unpack_gain, forecast=forecast,
+_compiled_scans: dict[str, Any] = {}
+
+
+def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool,
+                   calendar: bool = False) -> tuple[Any, tuple[float, ...]]:
+    """The scan loop for this model and these rules, and the model's coefficients to pass it.
+
+    The steady step is written inline (:func:`~leadline.detector.stream.steady_step_source`)
+    with the model's matrix entries as names, so the loop compiles once per model structure and
+    set of rules and is shared by every model of that structure; with ``calendar`` d_t comes
+    per slot from ``intercepts``, else it is the constant ``d``.
+    """
+    coefficients: dict[str, float] = {}
+    unpack_a, unpack_gain, forecast, next_state = steady_step_source(system, coefficients)
+    names = list(coefficients)
+    unpack = f"{', '.join(names)}{',' if len(names) == 1 else ''} = coefficients" if names else "pass"
+    source = _SCAN_HEAD.format(unpack_coefficients=unpack, unpack_a=unpack_a, unpack_gain=unpack_gain,
+                               forecast=forecast,
                                loop="y, d in zip(values, intercepts)" if calendar else "y in values")
     if cusum:
         source += _SCAN_CUSUM.format(clipped="(clip if z > clip else (-clip if z < -clip else z))" if clip else "z")
@@ -216,9 +229,14 @@ def _scan_function(system: Any, cusum: bool, clip: bool, flat: bool, calendar: b
     if cusum:
         source += _SCAN_CUSUM_COMMIT
     source += _SCAN_TAIL.format(unpack_a=unpack_a, next_state=next_state)
-    namespace: dict[str, Any] = {"repeat_probability": repeat_probability, "log": math.log, "inf": math.inf}
-    exec(compile(source, "<leadline quiet scan>", "exec"), namespace)  # noqa: S102 - literals only
-    return namespace["scan"]
+    function = _compiled_scans.get(source)
+    if function is None:
+        if len(_compiled_scans) >= 256:  # a site has a handful of structures; never grow without bound
+            _compiled_scans.clear()
+        namespace: dict[str, Any] = {"repeat_probability": repeat_probability, "log": math.log, "inf": math.inf}
+        exec(compile(source, "<leadline quiet scan>", "exec"), namespace)  # noqa: S102 - names only
+        function = _compiled_scans[source] = namespace["scan"]
+    return function, tuple(coefficients.values())
 
 
 def _scan(mon: Any, values: list[float], count: int, z_limit: float,
@@ -238,14 +256,15 @@ def _scan(mon: Any, values: list[float], count: int, z_limit: float,
         if flat is not None else (None, 0, 0.0, 0.0, 0.0, None, 0.0)
     key = (cusum is not None, cusum is not None and cusum.clip_abs_z is not None, flat is not None,
            intercepts is not None)
-    # compiled once per model and rule set: kept with the stream, it goes when the model goes
+    # the loop and the model's coefficients, looked up once per model and kept with its stream
     scans = stream.__dict__.setdefault("_quiet_scans", {})
-    scan = scans.get(key)
-    if scan is None:
-        scan = scans[key] = _scan_function(stream.system, *key)
+    found = scans.get(key)
+    if found is None:
+        found = scans[key] = _scan_function(stream.system, *key)
+    scan, coefficients = found
     taken, a, forecasts, zs, cusum_state, flat_state = scan(
-        values[:count], intercepts, stream._a_tuple, stream._gain, stream._d_const, stream.step, stream._sqrtF_ss, z_limit,
-        cusum_in, flat_in)
+        values[:count], intercepts, stream._a_tuple, stream._gain, stream._d_const, stream.step, stream._sqrtF_ss,
+        z_limit, cusum_in, flat_in, coefficients)
     return (taken, a, forecasts, zs, cusum_state if cusum is not None else (),
             flat_state if flat is not None else ())
 

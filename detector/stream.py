@@ -87,54 +87,80 @@ def interval_quantile(level: float) -> float:
     return float(norm.ppf(0.5 + level / 2.0))
 
 
-def steady_step_source(system: LinearSystem) -> tuple[str, str, str, str]:
+def steady_step_source(system: LinearSystem, coefficients: dict[str, float] | None = None) -> tuple[str, str, str, str]:
     """The steady step as Python expressions over the names ``a0..``, ``g0..``, ``y``, ``d``, ``t``, ``v``.
 
     Returns ``(unpack_a, unpack_gain, forecast, next_state)``: the targets
     that unpack a and the gain (``"a0, a1"``; a trailing comma for one
     state), the forecast Z a_t + d_t, and the tuple of the next state's
-    expressions (in terms of v = y - f). The matrices are written as float
-    literals (``repr`` round-trips a float exactly) and zeros are left out.
-    Both :func:`_compile_steady_step` and the replay's quiet runs
+    expressions (in terms of v = y - f). The matrices' entries are written
+    as float literals (``repr`` round-trips a float exactly), or, when a
+    ``coefficients`` dict is given, as names (``Z0``, ``T0_1``, ``C0``,
+    ``S0``) that it is filled with, so that the source depends on the
+    model's structure only (which entries are zero) and compiles once for
+    all models of that structure; zeros are left out either way. Both
+    :func:`_compile_steady_step` and the replay's quiet runs
     (:mod:`.quiet_run`) are built from these, so they do the same
     floating-point operations in the same order.
     """
+    def coef(name: str, value: float) -> str:
+        if coefficients is None:
+            return repr(float(value))
+        coefficients[name] = float(value)
+        return name
+
     k = system.k_states
     a_names = [f"a{i}" for i in range(k)]
-    z_terms = [f"{float(z)!r}*{a}" for z, a in zip(system.design, a_names) if z != 0.0]
+    z_terms = [f"{coef(f'Z{j}', z)}*{a}" for j, (z, a) in enumerate(zip(system.design, a_names)) if z != 0.0]
     out = []
     for i in range(k):
-        terms = [f"{float(system.transition[i, j])!r}*{a_names[j]}" for j in range(k) if system.transition[i, j] != 0.0]
+        terms = [f"{coef(f'T{i}_{j}', system.transition[i, j])}*{a_names[j]}" for j in range(k)
+                 if system.transition[i, j] != 0.0]
         terms.append(f"g{i}*v")
         if system.state_intercept_const[i] != 0.0:
-            terms.append(repr(float(system.state_intercept_const[i])))
+            terms.append(coef(f"C{i}", system.state_intercept_const[i]))
         if system.state_intercept_slope[i] != 0.0:
-            terms.append(f"{float(system.state_intercept_slope[i])!r}*t")
+            terms.append(f"{coef(f'S{i}', system.state_intercept_slope[i])}*t")
         out.append(" + ".join(terms))
     comma = "," if k == 1 else ""
     return (f"{', '.join(a_names)}{comma}", f"{', '.join(f'g{i}' for i in range(k))}{comma}",
             f"{' + '.join(z_terms) if z_terms else '0.0'} + d", f"({', '.join(out)}{comma})")
 
 
+_steady_factories: dict[str, Any] = {}
+
+
 def _compile_steady_step(system: LinearSystem):
     """Build ``step(a, gain, y, d, t) -> (forecast, error, next_state)``.
 
-    The matrices are written into the source as float literals, zeros are
-    left out (:func:`steady_step_source`), so the step is a few
-    multiply-adds with no numpy call overhead.
+    A few multiply-adds with no numpy call overhead, zeros left out
+    (:func:`steady_step_source`). The source names the matrix entries, so it
+    compiles once per model structure; each model's entries are bound in a
+    closure.
     """
-    unpack_a, unpack_gain, forecast, next_state = steady_step_source(system)
+    coefficients: dict[str, float] = {}
+    unpack_a, unpack_gain, forecast, next_state = steady_step_source(system, coefficients)
+    names = list(coefficients)
     lines = [
-        "def step(a, gain, y, d, t):",
-        f"    {unpack_a} = a",
-        f"    {unpack_gain} = gain",
-        f"    f = {forecast}",
-        "    v = y - f",
-        f"    return f, v, {next_state}",
+        "def make(coefficients):",
+        f"    {', '.join(names)}{',' if len(names) == 1 else ''} = coefficients" if names else "    pass",
+        "    def step(a, gain, y, d, t):",
+        f"        {unpack_a} = a",
+        f"        {unpack_gain} = gain",
+        f"        f = {forecast}",
+        "        v = y - f",
+        f"        return f, v, {next_state}",
+        "    return step",
     ]
-    namespace: dict[str, Any] = {}
-    exec(compile("\n".join(lines), "<leadline steady step>", "exec"), namespace)  # noqa: S102 - literals only
-    return namespace["step"]
+    source = "\n".join(lines)
+    make = _steady_factories.get(source)
+    if make is None:
+        if len(_steady_factories) >= 256:
+            _steady_factories.clear()
+        namespace: dict[str, Any] = {}
+        exec(compile(source, "<leadline steady step>", "exec"), namespace)  # noqa: S102 - names only
+        make = _steady_factories[source] = namespace["make"]
+    return make(tuple(coefficients.values()))
 
 
 class Stream:

@@ -271,10 +271,10 @@ def test_the_quiet_scan_equals_statsmodels_batch_filter(spec, series):
         stretch = y[N_TRAIN + i:]
         finite = int(np.argmin(np.isfinite(stretch))) if not np.isfinite(stretch).all() else stretch.size
         if stream.is_steady and stream.regression is None and finite >= 2:
-            scan = _scan_function(stream.system, False, False, False)
+            scan, coefficients = _scan_function(stream.system, False, False, False)
             taken, a, forecasts, zs, _, _ = scan(stretch[:finite].tolist(), None, stream._a_tuple, stream._gain,
                                                  stream._d_const, stream.step, stream._sqrtF_ss, math.inf,
-                                                 (0.0,) * 10, (None, 0, 0.0, 0.0, 0.0, None, 0.0))
+                                                 (0.0,) * 10, (None, 0, 0.0, 0.0, 0.0, None, 0.0), coefficients)
             assert taken == finite
             forecast[i:i + taken], z[i:i + taken] = forecasts, zs
             stream._a_tuple, stream._t = a, stream.step + taken
