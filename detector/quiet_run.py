@@ -16,7 +16,14 @@ called reading by reading would have left it, at a fraction of the cost:
   and stale checks, the range check, the noise-burst statistic (a
   conservative check; the window is then rebuilt exactly), the rings of the
   refit window, the diagnostics, the re-anchoring history, the level
-  condition and the lifecycles' on-delay windows.
+  condition and the lifecycles' on-delay windows;
+* a model with calendar terms takes d_t (and the level condition its
+  x_t' beta) slot by slot from the stream's own block cache, as the steps
+  one by one do.
+
+:func:`learn_quiet` does the same for a feed still learning, before its
+grid exists: its readings are kept in bulk up to the one that fills the
+training window.
 
 The run stops *before* the first reading at which anything could happen
 (a |z| at the spike warning or insulation level, a CUSUM signal, a flatline
