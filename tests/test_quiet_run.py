@@ -34,7 +34,8 @@ from leadline.detector.seasonality import CalendarTerms, SeasonalPeriod
 from leadline.detector.simulate import simulate_arima
 from leadline.detector.spec import ModelSpec
 from reference import batch_filter, max_relative_difference
-from test_stream_exactness import FAMILIES, N_TRAIN, RTOL, with_gaps
+from test_stream_exactness import N_TRAIN, RTOL, with_gaps
+from test_stream_exactness import cases as exactness_cases
 
 START = datetime(2026, 5, 4, tzinfo=timezone.utc)
 INTERVAL_S = 900.0
@@ -195,16 +196,7 @@ def test_a_feed_with_an_open_episode_or_an_uncovered_rule_is_left_to_the_per_rea
     feed = FeedLifecycle(history.feed_id, settings[history.feed_id])
     no_clock = np.full(history.epoch_s.size, np.nan)
     assert advance_quiet(feed, history.epoch_s, history.values, no_clock) is None  # still learning
-    ewma = replace(settings[history.feed_id], sigma_limits={"ewma_lam": 0.2})
-    i = 0
-    feed = FeedLifecycle(history.feed_id, ewma)
-    while feed.state != "watching":
-        reading = Reading(history.feed_id, datetime.fromtimestamp(history.epoch_s[i], tz=timezone.utc),
-                          float(history.values[i]))
-        for request in feed.process(reading, None).refit_requests:
-            fitted, thresholds = run_refit_with_thresholds(request)
-            feed.install(fitted, 1, request.reason, thresholds, request)
-        i += 1
+    feed, i = _watching(history, replace(settings[history.feed_id], sigma_limits={"ewma_lam": 0.2}))
     before = feed_checkpoint(feed)
     assert "ewma" in feed.monitor.rules
     assert advance_quiet(feed, history.epoch_s[i:], history.values[i:], no_clock[i:]) is None
@@ -243,20 +235,7 @@ def test_readings_ahead_of_the_clock_end_a_run_before_them(brackenholt):
 N_STREAM = 1500  # long enough for the slowest family (the airline model) to reach its steady state
 
 
-def exactness_cases():
-    """The families of tests/test_stream_exactness.py, streamed for longer."""
-    n = N_TRAIN + N_STREAM
-    for i, (name, spec, kwargs) in enumerate(FAMILIES):
-        yield pytest.param(spec, simulate_arima(n, seed=100 + i, **kwargs), id=name)
-    yield pytest.param(ModelSpec((1, 0, 0), (0, 1, 1, 4), "n"),
-                       simulate_arima(n, ar=[0.5], seasonal_ma=[-0.5], seasonal_d=1, period=4, mean=40.0, seed=7),
-                       id="SARIMA(1,0,0)(0,1,1)_4")
-    yield pytest.param(ModelSpec((0, 1, 1), (0, 1, 1, 12), "n"),
-                       simulate_arima(n, ma=[-0.4], d=1, seasonal_ma=[-0.6], seasonal_d=1, period=12, seed=8),
-                       id="SARIMA(0,1,1)(0,1,1)_12 (airline)")
-
-
-@pytest.mark.parametrize("spec, series", list(exactness_cases()))
+@pytest.mark.parametrize("spec, series", list(exactness_cases(N_STREAM)))
 def test_the_quiet_scan_equals_statsmodels_batch_filter(spec, series):
     """The scan loop of the quiet runs, stretch by stretch between the gaps, against statsmodels'
     SARIMAX ``filter()`` with the fitted parameters (the families of the exactness table, with

@@ -57,10 +57,11 @@ def with_gaps(y: np.ndarray) -> np.ndarray:
     return y
 
 
-def cases():
+def cases(n_stream: int = N_STREAM):
+    """Every family, N_TRAIN readings to fit and ``n_stream`` to stream (seeded)."""
+    n = N_TRAIN + n_stream
     for i, (name, spec, kwargs) in enumerate(FAMILIES):
-        yield pytest.param(spec, simulate_arima(N_TRAIN + N_STREAM, seed=100 + i, **kwargs), id=name)
-    n = N_TRAIN + N_STREAM
+        yield pytest.param(spec, simulate_arima(n, seed=100 + i, **kwargs), id=name)
     yield pytest.param(ModelSpec((1, 0, 0), (0, 1, 1, 4), "n"),
                        simulate_arima(n, ar=[0.5], seasonal_ma=[-0.5], seasonal_d=1, period=4, mean=40.0, seed=7),
                        id="SARIMA(1,0,0)(0,1,1)_4")
