@@ -24,7 +24,7 @@ import numpy as np
 
 from .errors import DataError, StateFormatError
 
-__all__ = ["FEED_STATE_FORMAT_VERSION", "READABLE_FORMAT_VERSIONS", "pack", "unpack"]
+__all__ = ["FEED_STATE_FORMAT_VERSION", "READABLE_FORMAT_VERSIONS", "pack", "read_preamble", "unpack"]
 
 _MAGIC = b"LLFEED01"
 #: Version of the byte format written by :func:`pack`. Version 2 keeps the refit window as float32
@@ -61,6 +61,27 @@ def pack(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> bytes:
     return _MAGIC + struct.pack("<HI", FEED_STATE_FORMAT_VERSION, len(header_bytes)) + body
 
 
+def read_preamble(data: Any, magic: bytes, what: str, readable: tuple[int, ...]) -> tuple[bytes, int, int, int]:
+    """Check the magic bytes and format version of saved state; ``(data, version, header length,
+    start of the header)``. Shared by the feed checkpoint and the stream state (``what`` names it).
+
+    Raises
+    ------
+    StateFormatError
+        Not bytes, not this kind of state, or a version not in ``readable``.
+    """
+    if not isinstance(data, (bytes, bytearray, memoryview)):
+        raise StateFormatError(f"{what} must be bytes, got {type(data).__name__}")
+    data = bytes(data)
+    if len(data) < len(magic) + 6 or not data.startswith(magic):
+        raise StateFormatError(f"not a leadline {what} (bad magic bytes)")
+    version, header_len = struct.unpack_from("<HI", data, len(magic))
+    if version not in readable:
+        raise StateFormatError(f"{what} format version {version} is not supported "
+                               f"(this build reads {', '.join(map(str, readable))})")
+    return data, version, header_len, len(magic) + 6
+
+
 def unpack(data: bytes) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     """Checkpoint bytes to (header, arrays).
 
@@ -70,16 +91,7 @@ def unpack(data: bytes) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         Not a leadline feed checkpoint, a format version this build does not
         read, or corrupt bytes.
     """
-    if not isinstance(data, (bytes, bytearray, memoryview)):
-        raise StateFormatError(f"feed checkpoint must be bytes, got {type(data).__name__}")
-    data = bytes(data)
-    if len(data) < len(_MAGIC) + 6 or not data.startswith(_MAGIC):
-        raise StateFormatError("not a leadline feed checkpoint (bad magic bytes)")
-    version, header_len = struct.unpack_from("<HI", data, len(_MAGIC))
-    if version not in READABLE_FORMAT_VERSIONS:
-        raise StateFormatError(f"feed checkpoint format version {version} is not supported "
-                               f"(this build reads {', '.join(map(str, READABLE_FORMAT_VERSIONS))})")
-    start = len(_MAGIC) + 6
+    data, version, header_len, start = read_preamble(data, _MAGIC, "feed checkpoint", READABLE_FORMAT_VERSIONS)
     try:
         if version == 1:  # a JSON header, then an .npz archive
             header = json.loads(data[start:start + header_len].decode("utf-8"))

@@ -52,6 +52,7 @@ from typing import Any, Protocol
 import numpy as np
 from scipy.stats import norm
 
+from .checkpoint_bytes import read_preamble
 from .errors import ParameterError, StateFormatError
 from .innovation import Innovation
 from .seasonality import regression_from_dict
@@ -465,17 +466,7 @@ class Stream:
             When the bytes are not a leadline stream state, are corrupt, or
             are of a format version this build does not read.
         """
-        if not isinstance(data, (bytes, bytearray, memoryview)):
-            raise StateFormatError(f"stream state must be bytes, got {type(data).__name__}")
-        data = bytes(data)
-        if len(data) < len(_MAGIC) + 6 or not data.startswith(_MAGIC):
-            raise StateFormatError("not a leadline stream state (bad magic bytes)")
-        version, header_len = struct.unpack_from("<HI", data, len(_MAGIC))
-        if version != STATE_FORMAT_VERSION:
-            raise StateFormatError(
-                f"stream state format version {version} is not supported (this build reads {STATE_FORMAT_VERSION})"
-            )
-        start = len(_MAGIC) + 6
+        data, _, header_len, start = read_preamble(data, _MAGIC, "stream state", (STATE_FORMAT_VERSION,))
         try:
             header = json.loads(data[start : start + header_len].decode("utf-8"))
             if not isinstance(header, dict):
