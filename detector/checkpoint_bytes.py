@@ -24,7 +24,8 @@ import numpy as np
 
 from .errors import DataError, StateFormatError
 
-__all__ = ["FEED_STATE_FORMAT_VERSION", "READABLE_FORMAT_VERSIONS", "pack", "read_preamble", "unpack"]
+__all__ = ["FEED_STATE_FORMAT_VERSION", "READABLE_FORMAT_VERSIONS", "layout", "pack", "read_arrays", "read_preamble",
+           "unpack"]
 
 _MAGIC = b"LLFEED01"
 #: Version of the byte format written by :func:`pack`. Version 2 keeps the refit window as float32
@@ -39,6 +40,24 @@ READABLE_FORMAT_VERSIONS = (1, 2)
 _ARRAY_DTYPES = frozenset({"<f8", "<f4", "|u1", "<i8", "|b1"})
 
 
+def layout(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> tuple[bytes, bytes]:
+    """The JSON header, with the ``"$arrays"`` layout added, and the arrays' raw bytes, in order.
+
+    Shared by the feed checkpoint (:func:`pack`) and the stream state
+    (:meth:`~.stream.Stream.to_bytes`); :func:`read_arrays` reads it back.
+    """
+    spec, chunks = [], []
+    for name in sorted(arrays):
+        array = np.ascontiguousarray(arrays[name])
+        if array.dtype.str not in _ARRAY_DTYPES:
+            array = array.astype(array.dtype.newbyteorder("<"))
+        if array.dtype.str not in _ARRAY_DTYPES:
+            raise DataError(f"saved array {name!r} has type {array.dtype}, not a plain number type")
+        spec.append([name, array.dtype.str, list(array.shape)])
+        chunks.append(array.tobytes())
+    return json.dumps({**header, "$arrays": spec}, sort_keys=True).encode("utf-8"), b"".join(chunks)
+
+
 def pack(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> bytes:
     """Header (JSON-serialisable) and arrays to checkpoint bytes (format 2).
 
@@ -47,17 +66,8 @@ def pack(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> bytes:
     name, dtype and shape, then the arrays' raw little-endian bytes in that
     order.
     """
-    layout, chunks = [], []
-    for name in sorted(arrays):
-        array = np.ascontiguousarray(arrays[name])
-        if array.dtype.str not in _ARRAY_DTYPES:
-            array = array.astype(array.dtype.newbyteorder("<"))
-        if array.dtype.str not in _ARRAY_DTYPES:
-            raise DataError(f"checkpoint array {name!r} has type {array.dtype}, not a plain number type")
-        layout.append([name, array.dtype.str, list(array.shape)])
-        chunks.append(array.tobytes())
-    header_bytes = json.dumps({**header, "$arrays": layout}, sort_keys=True).encode("utf-8")
-    body = zlib.compress(header_bytes + b"".join(chunks), 1)
+    header_bytes, raw = layout(header, arrays)
+    body = zlib.compress(header_bytes + raw, 1)
     return _MAGIC + struct.pack("<HI", FEED_STATE_FORMAT_VERSION, len(header_bytes)) + body
 
 
@@ -108,20 +118,33 @@ def unpack(data: bytes) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
 
 
 def _read_body(body: bytes, header_len: int) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    header = json.loads(body[:header_len].decode("utf-8"))
+    return read_arrays(body, 0, header_len)
+
+
+def read_arrays(data: bytes, start: int, header_len: int) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """Read back what :func:`layout` wrote, found at ``data[start:]``: (header, arrays).
+
+    Raises
+    ------
+    ValueError
+        The header is not a JSON object with its layout, an array type is
+        not a plain number type, or the bytes do not match the layout
+        (the callers name the state in their :class:`StateFormatError`).
+    """
+    header = json.loads(data[start:start + header_len].decode("utf-8"))
     if not isinstance(header, dict) or not isinstance(header.get("$arrays"), list):
         raise ValueError("the header is not a JSON object with its array layout")
-    arrays, offset = {}, header_len
+    arrays, offset = {}, start + header_len
     for name, dtype, shape in header.pop("$arrays"):
         if dtype not in _ARRAY_DTYPES:
             raise ValueError(f"array {name!r} has type {dtype!r}, not a plain number type")
         dt = np.dtype(dtype)
         count = int(np.prod(shape, dtype=np.int64))
         end = offset + count * dt.itemsize
-        if end > len(body):
-            raise ValueError(f"array {name!r} runs past the end of the checkpoint")
-        arrays[name] = np.frombuffer(body, dtype=dt, count=count, offset=offset).reshape(shape).copy()
+        if end > len(data):
+            raise ValueError(f"array {name!r} runs past the end of the saved state")
+        arrays[name] = np.frombuffer(data, dtype=dt, count=count, offset=offset).reshape(shape).copy()
         offset = end
-    if offset != len(body):
-        raise ValueError(f"{len(body) - offset} bytes after the last array")
+    if offset != len(data):
+        raise ValueError(f"{len(data) - offset} bytes after the last array")
     return header, arrays

@@ -100,7 +100,11 @@ def _is_row(row: Any) -> bool:
 
 
 def _tables_out(value: Any, arrays: dict[str, np.ndarray], prefix: str) -> Any:
-    """``value`` with every long list of equal-width numeric rows moved to ``arrays``."""
+    """``value`` with every array, and every long list of equal-width numeric rows, moved to ``arrays``."""
+    if isinstance(value, np.ndarray):
+        name = f"{prefix}{len(arrays)}"
+        arrays[name] = np.asarray(value, dtype=float)
+        return {"$array": name}
     if isinstance(value, dict):
         return {k: _tables_out(v, arrays, prefix) for k, v in value.items()}
     if isinstance(value, list):
@@ -117,6 +121,11 @@ def _tables_out(value: Any, arrays: dict[str, np.ndarray], prefix: str) -> Any:
 
 def _tables_in(value: Any, arrays: dict[str, np.ndarray]) -> Any:
     if isinstance(value, dict):
+        if "$array" in value:
+            try:
+                return arrays[value["$array"]]
+            except KeyError as exc:
+                raise StateFormatError(f"feed checkpoint is missing array {value['$array']!r}") from exc
         if "$table" in value:
             try:
                 array = arrays[value["$table"]]
@@ -134,7 +143,7 @@ def _tables_in(value: Any, arrays: dict[str, np.ndarray]) -> Any:
 def snapshot_monitor(monitor: Any, prefix: str = "monitor_") -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     """The running state of a FeedMonitor and its rules: (JSON-ready dict, arrays)."""
     arrays: dict[str, np.ndarray] = {}
-    return _tables_out(monitor.state_dict(), arrays, prefix), arrays
+    return _tables_out(monitor.state_dict(compact=True), arrays, prefix), arrays
 
 
 def _monitor_state(saved: dict[str, Any], arrays: dict[str, np.ndarray]) -> dict[str, Any]:

@@ -52,7 +52,7 @@ from typing import Any, Protocol
 import numpy as np
 from scipy.stats import norm
 
-from .checkpoint_bytes import read_preamble
+from .checkpoint_bytes import layout, read_arrays, read_preamble
 from .errors import ParameterError, StateFormatError
 from .innovation import Innovation
 from .seasonality import regression_from_dict
@@ -65,8 +65,10 @@ INTERCEPT_BLOCK = 1024
 STEADY_RTOL = 1e-12
 
 _MAGIC = b"LLSTREAM"
-#: Version of the byte format written by :meth:`Stream.to_bytes`.
-STATE_FORMAT_VERSION = 1
+#: Version of the byte format written by :meth:`Stream.to_bytes` (2: raw arrays after the header; 1: ``.npz``).
+STATE_FORMAT_VERSION = 2
+#: The versions :meth:`Stream.from_bytes` reads.
+READABLE_STATE_VERSIONS = (1, 2)
 
 
 class Regression(Protocol):
@@ -437,9 +439,13 @@ class Stream:
     def to_bytes(self) -> bytes:
         """The full state (a_t, P_t, the model and its version) as bytes.
 
-        Layout: 8-byte magic, uint16 format version, uint32 header length,
-        a UTF-8 JSON header, then an ``.npz`` archive of the arrays (loaded
-        with ``allow_pickle=False``).
+        Layout (format 2): 8-byte magic, uint16 format version, uint32
+        header length, a UTF-8 JSON header whose ``"$arrays"`` lists the
+        arrays' names, number types and shapes, then their raw
+        little-endian bytes (:func:`~.checkpoint_bytes.layout`). Format 1
+        had an ``.npz`` archive after the header (about 2 KB of zip and
+        ``.npy`` headers around a few hundred bytes of numbers); it still
+        loads, with ``allow_pickle=False``.
         """
         header = {
             "format_version": STATE_FORMAT_VERSION,
@@ -451,10 +457,8 @@ class Stream:
             "regression": self.regression.to_dict() if self.regression is not None else None,
             "meta": self.meta,
         }
-        header_bytes = json.dumps(header, sort_keys=True).encode("utf-8")
-        buffer = io.BytesIO()
-        np.savez(buffer, state=self.state, cov=self._P, **self.system.to_arrays())
-        return _MAGIC + struct.pack("<HI", STATE_FORMAT_VERSION, len(header_bytes)) + header_bytes + buffer.getvalue()
+        header_bytes, raw = layout(header, {"state": self.state, "cov": self._P, **self.system.to_arrays()})
+        return _MAGIC + struct.pack("<HI", STATE_FORMAT_VERSION, len(header_bytes)) + header_bytes + raw
 
     @classmethod
     def from_bytes(cls, data: bytes) -> "Stream":
@@ -466,13 +470,17 @@ class Stream:
             When the bytes are not a leadline stream state, are corrupt, or
             are of a format version this build does not read.
         """
-        data, _, header_len, start = read_preamble(data, _MAGIC, "stream state", (STATE_FORMAT_VERSION,))
+        data, version, header_len, start = read_preamble(data, _MAGIC, "stream state", READABLE_STATE_VERSIONS)
         try:
-            header = json.loads(data[start : start + header_len].decode("utf-8"))
-            if not isinstance(header, dict):
-                raise StateFormatError(f"stream state header is a JSON {type(header).__name__}, expected an object")
-            with np.load(io.BytesIO(data[start + header_len :]), allow_pickle=False) as archive:
-                arrays = {name: archive[name] for name in archive.files}
+            if version == 1:
+                header = json.loads(data[start : start + header_len].decode("utf-8"))
+                if not isinstance(header, dict):
+                    raise StateFormatError(f"stream state header is a JSON {type(header).__name__}, "
+                                           "expected an object")
+                with np.load(io.BytesIO(data[start + header_len :]), allow_pickle=False) as archive:
+                    arrays = {name: archive[name] for name in archive.files}
+            else:
+                header, arrays = read_arrays(data, start, header_len)
             system = LinearSystem.from_arrays(arrays)
             state, cov = arrays["state"], arrays["cov"]
             regression = None

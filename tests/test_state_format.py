@@ -38,6 +38,24 @@ def test_bad_bytes_are_refused(stream):
         Stream.from_bytes(newer)
     with pytest.raises(StateFormatError, match="corrupt"):
         Stream.from_bytes(data[:-40])
+    with pytest.raises(StateFormatError, match="corrupt.*bytes after the last array"):
+        Stream.from_bytes(data + b"\0" * 8)
+
+
+def test_a_stream_state_of_format_1_still_loads(stream):
+    # format 1: the same JSON header, then an .npz archive of the arrays
+    import io
+    import json
+
+    body = io.BytesIO()
+    np.savez(body, state=stream.state, cov=stream.cov, **stream.system.to_arrays())
+    header = json.loads(stream.to_bytes()[14:14 + struct.unpack_from("<I", stream.to_bytes(), 10)[0]])
+    header.pop("$arrays")
+    header_bytes = json.dumps({**header, "format_version": 1}).encode()
+    old = b"LLSTREAM" + struct.pack("<HI", 1, len(header_bytes)) + header_bytes + body.getvalue()
+    back = Stream.from_bytes(old)
+    assert back.to_bytes() == stream.to_bytes()
+    assert len(stream.to_bytes()) < len(old) / 3  # raw arrays, no zip and .npy headers
 
 
 # ------------------------------------------------- checkpoints of the first layout

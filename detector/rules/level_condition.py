@@ -233,9 +233,11 @@ class LevelCondition:
                 f"the episode (departure {self._departure:+.3g}, largest {self._peak:+.3g})")
 
     # ------------------------------------------------------------ save/load
-    def state_dict(self) -> dict[str, Any]:
-        """The running state as plain JSON values, versioned."""
-        return {"v": STATE_VERSION, "recent": [float(x) for x in self._recent(self._count)],
+    def state_dict(self, compact: bool = False) -> dict[str, Any]:
+        """The running state as plain JSON values, versioned (``compact``: the recent readings as a
+        float array, for a checkpoint's binary part)."""
+        recent = self._recent(self._count)
+        return {"v": STATE_VERSION, "recent": recent if compact else [float(x) for x in recent],
                 "level_before": self._level_before, "floor": self._floor, "established": self._established,
                 "peak": self._peak}
 

@@ -371,11 +371,15 @@ class FeedMonitor(LevelEpisodes):
     #: with the condition tracking nothing, its recent readings empty).
     STATE_VERSION = 2
 
-    def state_dict(self) -> dict[str, Any]:
+    def state_dict(self, compact: bool = False) -> dict[str, Any]:
         """The running state of the monitor, its rules and their lifecycles, as plain JSON values.
 
         Settings are not included: the state is loaded into a monitor built
         from the same configuration (:meth:`MonitorConfig.fingerprint`).
+        With ``compact``, the two long tables (the step history, the level
+        condition's recent readings) are float arrays instead of lists, for a
+        checkpoint to keep as raw bytes (:func:`~..feed_state.snapshot_monitor`);
+        :meth:`load_state` takes either form.
         """
         return {
             "v": self.STATE_VERSION,
@@ -384,13 +388,13 @@ class FeedMonitor(LevelEpisodes):
             "shock_candidate": None if self._shock_candidate is None else list(self._shock_candidate),
             "last_absorbed": self._last_absorbed,
             "last_innovation": innovation_to_json(self.last_innovation),
-            "history": [list(row) for row in self._history.rows()],
+            "history": self._history.table() if compact else [list(row) for row in self._history.rows()],
             "settle": None if self._settle is None else [list(row) for row in self._settle],
             "settle_prior_se": self._settle_prior_se,
             "unconfirmed": None if self._unconfirmed is None else list(self._unconfirmed),
             "rules": {name: rule.state_dict() for name, rule in self.rules.items()},
             "lifecycles": {name: life.state_dict() for name, life in self.lifecycles.items()},
-            "level": {"condition": self.level.state_dict(), "age": self._level_age, "onset_detail": self._level_onset,
+            "level": {"condition": self.level.state_dict(compact), "age": self._level_age, "onset_detail": self._level_onset,
                       "return_step": self._return_step, "last_reanchor_step": self._last_reanchor_step},
         }
 

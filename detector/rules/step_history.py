@@ -31,7 +31,7 @@ class StepHistory:
     capacity : int
         Steps kept (default :data:`~.level_shift.MAX_RUN_STEPS`, all the
         estimate can use).
-    rows : iterable of (z, std, absorbed), optional
+    rows : iterable of (z, std, absorbed), or an ``(n, 3)`` array, optional
         Steps to start with, oldest first; only the last ``capacity`` are kept.
     """
 
@@ -46,6 +46,9 @@ class StepHistory:
         self._absorbed = np.zeros(capacity, dtype=bool)
         self._next = 0
         self._len = 0
+        if isinstance(rows, np.ndarray):
+            self.extend_table(rows)
+            return
         for row in rows:
             self.append(*_row(row))
 
@@ -84,11 +87,24 @@ class StepHistory:
         self._next = (self._next + n) % cap
         self._len = min(self._len + n, cap)
 
-    def rows(self) -> list[tuple[float, float, bool]]:
-        """The steps kept, oldest first, as ``(z, std, absorbed)`` tuples of Python floats and bools."""
+    def table(self) -> np.ndarray:
+        """The steps kept, oldest first, as an ``(n, 3)`` float array: z, std, absorbed (1.0 or 0.0)."""
+        order = self._order()
+        return np.column_stack([self._z[order], self._std[order], self._absorbed[order]]).astype(float)
+
+    def extend_table(self, table: Any) -> None:
+        """Keep the rows of a :meth:`table`, oldest first."""
+        table = np.asarray(table, dtype=float).reshape(-1, 3)
+        self.extend(table[:, 0], table[:, 1], table[:, 2] != 0.0)
+
+    def _order(self) -> np.ndarray:
         cap = self._z.size
         start = (self._next - self._len) % cap
-        order = (np.arange(self._len) + start) % cap
+        return (np.arange(self._len) + start) % cap
+
+    def rows(self) -> list[tuple[float, float, bool]]:
+        """The steps kept, oldest first, as ``(z, std, absorbed)`` tuples of Python floats and bools."""
+        order = self._order()
         return list(zip(self._z[order].tolist(), self._std[order].tolist(), self._absorbed[order].tolist()))
 
 
