@@ -314,6 +314,44 @@ class NoiseBurstRule(RuleBase):
         self._values = deque(values[-self.window:])
         self._recount()
 
+    def quiet_statistic(self, z: float) -> float | None:
+        """Q_t after :meth:`assess` of a finite ``z`` below the screen, judged before the window
+        moves; None when it would reach the raise limit, with the margin of
+        :meth:`quiet_run_length` (a relative 1e-9: a step that close is left to :meth:`assess`)."""
+        c = self.clip_abs_z
+        if c is not None:
+            z = c if z > c else (-c if z < -c else z)
+        squares = list(self._squares)
+        if self._last_valid is not None:
+            squares.append((z - self._last_valid) ** 2)
+        valid = self._valid + 1
+        if len(self._values) >= self.window and self._values[0] is not None:
+            valid -= 1
+            if squares:
+                del squares[0]
+        q = 0.5 * math.fsum(squares)  # the sum _push takes, over the same squares in the same order
+        if valid >= self.min_valid and q > self._raise[valid] * (1.0 - 1e-9):
+            return None
+        return q
+
+    def push_quiet(self, z: float, q: float) -> None:
+        """Take a ``z`` that :meth:`quiet_statistic` passed, with the Q_t it gave: the window as
+        :meth:`assess` leaves it."""
+        c = self.clip_abs_z
+        if c is not None:
+            z = c if z > c else (-c if z < -c else z)
+        values, squares = self._values, self._squares
+        values.append(z)
+        if self._last_valid is not None:
+            squares.append((z - self._last_valid) ** 2)
+        self._last_valid = z
+        self._valid += 1
+        if len(values) > self.window and values.popleft() is not None:
+            self._valid -= 1
+            if squares:
+                squares.popleft()
+        self._q = q
+
     def assess(self, innovation: Innovation) -> Assessment | None:
         z = innovation.z
         if not math.isfinite(z):
