@@ -143,6 +143,14 @@ def _burst_quantile(n: int, tail_probability: float) -> float:
     return float(brentq(f, low, high, xtol=1e-9))
 
 
+@lru_cache(maxsize=256)
+def _limit_table(min_valid: int, window: int, tail_probability: float, limit_scale: float) -> tuple[float, ...]:
+    """The raise (or clear) limit for n = 0..window valid values (infinite below ``min_valid``),
+    one read-only tuple shared by every rule of these settings."""
+    return (math.inf,) * min_valid + tuple(burst_limit(n, tail_probability, limit_scale)
+                                           for n in range(min_valid, window + 1))
+
+
 def successive_difference_statistic(values) -> float:
     """Q = 1/2 sum of squared successive differences (the Notes)."""
     return 0.5 * math.fsum((b - a) ** 2 for a, b in zip(values, values[1:]))
@@ -203,11 +211,9 @@ class NoiseBurstRule(RuleBase):
         self.min_valid = max(3, window // 2) if min_valid is None else int(min_valid)
         if not 3 <= self.min_valid <= window:
             raise RuleError(f"noise_burst min_valid must be in [3, window={window}], got {min_valid!r}")
-        # limits for n = 0..w valid values, computed once (and cached across rules)
-        self._raise = [math.inf] * self.min_valid + [burst_limit(n, self.tail_probability, self.limit_scale)
-                                                     for n in range(self.min_valid, window + 1)]
-        self._clear = [math.inf] * self.min_valid + [burst_limit(n, self.clear_probability, self.limit_scale)
-                                                     for n in range(self.min_valid, window + 1)]
+        # limits for n = 0..w valid values, computed once and shared by every rule of these settings
+        self._raise = _limit_table(self.min_valid, window, self.tail_probability, self.limit_scale)
+        self._clear = _limit_table(self.min_valid, window, self.clear_probability, self.limit_scale)
         self.reset()
 
     def parameters(self) -> dict[str, Any]:

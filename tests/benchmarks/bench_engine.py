@@ -11,7 +11,12 @@ and the same model, as after a restart. For each N it prints, measured in
 one run:
 
 - **engine us/reading**: readings of all N feeds, one slot at a time
-  across the feeds (as they arrive live), through ``Engine.process``;
+  across the feeds (as they arrive live), through ``Engine.process``, and
+  the share of them taken by the quiet step (:mod:`leadline.detector.quiet_step`);
+- **per-reading us** and **gain**: the same readings through an engine with
+  ``quiet_steps=False`` (every reading the whole per-reading path), timed
+  slot by slot alternately with the first, so both see the same machine
+  (up to 10,000 feeds; ``--reference-up-to``);
 - **stream us/reading** and the **ratio**: the same values through
   ``Stream.update`` alone, N streams restored from the same state: what the
   rules and the bookkeeping add to the model step;
@@ -93,8 +98,15 @@ def as_feed(header: dict, arrays: dict, feed_id: str) -> bytes:
     return pack({**header, "feed_id": feed_id}, arrays)
 
 
+def _engine(header: dict, arrays: dict, version: int, ids: list[str], quiet: bool) -> Engine:
+    engine = Engine(lambda feed_id: SETTINGS, quiet_steps=quiet)
+    for fid in ids:
+        engine.restore(fid, as_feed(header, arrays, fid), version)
+    return engine
+
+
 def measure(n_feeds: int, template: bytes, version: int, first_slot: int, steps: int,
-            with_tracemalloc: bool) -> dict[str, float]:
+            with_tracemalloc: bool, with_reference: bool) -> dict[str, float]:
     header, arrays = unpack(template)
     ids = [f"site-{i:06d}" for i in range(n_feeds)]
     rng = np.random.default_rng(n_feeds)
@@ -108,9 +120,7 @@ def measure(n_feeds: int, template: bytes, version: int, first_slot: int, steps:
         tracemalloc.start()
     traced0 = tracemalloc.get_traced_memory()[0] if with_tracemalloc else 0
     rss0 = rss_kib()
-    engine = Engine(lambda feed_id: SETTINGS)
-    for fid in ids:
-        engine.restore(fid, as_feed(header, arrays, fid), version)
+    engine = _engine(header, arrays, version, ids, True)
     # one slot for every feed first (restores deliver their state changes), then the timed slots
     for j, fid in enumerate(ids):
         engine.process(Reading(fid, times[0], float(values[0, j])))
@@ -119,14 +129,28 @@ def measure(n_feeds: int, template: bytes, version: int, first_slot: int, steps:
     rss = rss_kib() - rss0
     if with_tracemalloc:
         tracemalloc.stop()
+    reference = _engine(header, arrays, version, ids, False) if with_reference else None
+    if reference is not None:
+        for j, fid in enumerate(ids):
+            reference.process(Reading(fid, times[0], float(values[0, j])))
 
-    start = time.perf_counter()
+    engine_s = reference_s = 0.0
+    quiet0 = engine.quiet_readings
     for k in range(1, steps):
         when = times[k]
         row = values[k].tolist()
-        for j, fid in enumerate(ids):
-            engine.process(Reading(fid, when, row[j]))
-    engine_s = time.perf_counter() - start
+        for timed in (engine, reference):
+            if timed is None:
+                continue
+            start = time.perf_counter()
+            for j, fid in enumerate(ids):
+                timed.process(Reading(fid, when, row[j]))
+            if timed is engine:
+                engine_s += time.perf_counter() - start
+            else:
+                reference_s += time.perf_counter() - start
+    quiet_share = (engine.quiet_readings - quiet0) / ((steps - 1) * n_feeds)
+    del reference
 
     start = time.perf_counter()
     states = engine.checkpoints()
@@ -144,6 +168,8 @@ def measure(n_feeds: int, template: bytes, version: int, first_slot: int, steps:
     stream_s = time.perf_counter() - start
     readings = (steps - 1) * n_feeds
     return {"feeds": n_feeds, "engine_us": engine_s / readings * 1e6, "stream_us": stream_s / readings * 1e6,
+            "reference_us": reference_s / readings * 1e6 if with_reference else float("nan"),
+            "quiet_share": quiet_share,
             "traced_kib": traced / 1024.0 / n_feeds, "rss_kib": rss / n_feeds,
             "checkpoint_b": checkpoint_bytes, "round_s": round_s}
 
@@ -174,6 +200,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--feeds", type=int, nargs="+", default=None)
     parser.add_argument("--quick", action="store_true", help="1,000 and 10,000 feeds")
     parser.add_argument("--steps", type=int, default=None, help="slots per feed (default: about 10^6 readings)")
+    parser.add_argument("--reference-up-to", type=int, default=10_000,
+                        help="time the per-reading path (quiet_steps=False) beside it up to this many feeds")
     parser.add_argument("--no-tracemalloc-above", type=int, default=10**9,
                         help="skip tracemalloc (slow) above this many feeds; RSS is always measured")
     args = parser.parse_args(argv)
@@ -182,12 +210,14 @@ def main(argv: list[str] | None = None) -> int:
     template, version, next_slot = template_checkpoint()
     print(f"template feed learned, fitted and filled in {time.perf_counter() - t:.1f} s; "
           f"checkpoint {len(template)} bytes")
-    print(f"{'feeds':>8} {'engine us/rdg':>13} {'stream us/rdg':>13} {'ratio':>7} {'KiB/feed tm':>11} "
-          f"{'KiB/feed RSS':>12} {'ckpt B/feed':>11} {'round s':>8}")
+    print(f"{'feeds':>8} {'engine us/rdg':>13} {'quiet':>6} {'per-rdg us':>10} {'gain':>5} {'stream us/rdg':>13} "
+          f"{'ratio':>7} {'KiB/feed tm':>11} {'KiB/feed RSS':>12} {'ckpt B/feed':>11} {'round s':>8}")
     for n in sizes:
         steps = args.steps or max(3, min(2000, 1_000_000 // n))
-        r = measure(n, template, version, next_slot, steps, with_tracemalloc=n <= args.no_tracemalloc_above)
-        print(f"{r['feeds']:>8} {r['engine_us']:>13.2f} {r['stream_us']:>13.2f} "
+        r = measure(n, template, version, next_slot, steps, with_tracemalloc=n <= args.no_tracemalloc_above,
+                    with_reference=n <= args.reference_up_to)
+        print(f"{r['feeds']:>8} {r['engine_us']:>13.2f} {r['quiet_share']:>6.0%} {r['reference_us']:>10.2f} "
+              f"{r['reference_us'] / r['engine_us']:>5.2f} {r['stream_us']:>13.2f} "
               f"{r['engine_us'] / r['stream_us']:>7.1f} {r['traced_kib']:>11.1f} {r['rss_kib']:>12.1f} "
               f"{r['checkpoint_b']:>11.0f} {r['round_s']:>8.2f}", flush=True)
     n_learning = 100 if args.quick else 500
