@@ -148,9 +148,10 @@ class FeedLifecycle:
         ``incident_gap_slots`` grid intervals (zero before the grid exists:
         only ``meter_reset`` can happen then, and it stands alone).
         """
-        if self.cursor is not None:
-            self.incidents.gap = timedelta(seconds=self.settings.incident_gap_slots * self.cursor.interval_s)
-        out.events[:] = [self.incidents.tag(ev) for ev in out.events]
+        if out.events:  # the gap is read only when an event is tagged
+            if self.cursor is not None:
+                self.incidents.gap = timedelta(seconds=self.settings.incident_gap_slots * self.cursor.interval_s)
+            out.events[:] = [self.incidents.tag(ev) for ev in out.events]
         return out
 
     # ------------------------------------------------------------- helpers

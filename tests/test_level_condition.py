@@ -91,3 +91,18 @@ def test_bad_settings_name_the_setting():
         LevelCondition(return_fraction=1.5)
     with pytest.raises(RuleError, match="current_readings"):
         LevelCondition(current_readings=0)
+
+
+def test_the_current_level_is_numpys_median_of_the_last_readings():
+    # numpy.median is the reference: the middle value, or the mean of the middle two, of the last
+    # current_readings readings kept; ties, quantized and wrapped rings included
+    rng = np.random.default_rng(23)
+    for _ in range(400):
+        current = int(rng.integers(1, 16))
+        capacity = current + 2 + int(rng.integers(1, 30))
+        cond = LevelCondition(current_readings=current, before_readings=2, capacity=capacity)
+        values = np.round(rng.standard_normal(int(rng.integers(1, 120))) * rng.choice([1e-3, 1.0, 1e6]),
+                          int(rng.integers(0, 4)))
+        for value in values:
+            cond.observe(float(value))
+        assert cond._current_level() == float(np.median(values[-current:]))

@@ -267,8 +267,18 @@ class LevelCondition:
         return self._ring[idx]
 
     def _current_level(self) -> float:
-        recent = self._recent(self.current_readings)
-        return float(np.median(recent)) if recent.size else math.nan
+        """The median of the last ``current_readings`` readings: ``np.median``'s value (the middle
+        one, or the mean (a + b) / 2 of the middle two), sorted in Python: each reading of a
+        tracked episode asks for it, and for a handful of values numpy's call costs ten times the sort."""
+        count = min(self.current_readings, self._count)
+        if count == 0:
+            return math.nan
+        ring, pos = self._ring, self._pos
+        start = pos - count
+        values = ring[start:pos].tolist() if start >= 0 else ring[start:].tolist() + ring[:pos].tolist()
+        values.sort()
+        middle = count // 2
+        return values[middle] if count % 2 else (values[middle - 1] + values[middle]) / 2
 
     def _judge(self) -> None:
         d = self._current_level() - self._level_before
