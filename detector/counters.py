@@ -44,6 +44,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .errors import ConfigError
+from .events import AlarmEvent
 
 #: Recent per-slot deltas kept to judge whether a wrapped delta is plausible.
 HISTORY_DELTAS = 100
@@ -148,6 +149,17 @@ class CounterDeltas:
         if delta >= 0:
             self._recent.append(delta)
         return CounterStep(delta, kind, previous, reading)
+
+    def reset_event(self, feed_id: str, step: CounterStep, ts: Any, model_version: int | None) -> AlarmEvent:
+        """The ``meter_reset`` warning of a ``reset`` step at ``ts`` (its delta is not scored)."""
+        size = f"a {self.register_size:g} register" if self.register_size else "a register with no rollover size"
+        detail = (f"register went from {step.previous:.10g} to {step.reading:.10g}, a drop of more than "
+                  f"{self.reset_drop_fraction:g} of the last reading and no rollover of {size}: meter reset or "
+                  "replacement; this interval's delta is not scored")
+        return AlarmEvent(feed_id=feed_id, rule="meter_reset", severity="warning", start=ts, end=ts,
+                          value_at_onset=step.reading,
+                          parameters={**self.parameters(), "previous_reading": step.previous},
+                          model_version=model_version, detail=detail)
 
     # ------------------------------------------------------------ save/load
     def to_dict(self) -> dict[str, Any]:

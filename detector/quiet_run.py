@@ -280,7 +280,7 @@ def _z_limit(mon: Any) -> float:
     """The |z| at which a reading stops being quiet: insulation, the spike warning, the screens."""
     limit = mon.insulation_abs_z if mon.config.insulate_outliers else math.inf
     if "spike" in mon.rules:
-        limit = min(limit, mon.spike.warning_abs_z)
+        limit = min(limit, mon.rules["spike"].warning_abs_z)
     if mon.cusum is not None and mon.cusum.cusum.screen_abs_z is not None:
         limit = min(limit, mon.cusum.cusum.screen_abs_z)
     burst = mon.noise_burst

@@ -63,12 +63,13 @@ class _Plan:
         self.timeout_s = None if mon.stale is None else mon.stale.interval_s * mon.stale.missing_intervals
 
 
-def _plan(mon: Any) -> _Plan | None:
-    found = mon.__dict__.get("_quiet_plan", False)
-    if found is False:
-        found = _Plan(mon) if COVERED_RULES.issuperset(mon.rules) else None
-        mon.__dict__["_quiet_plan"] = found
-    return found
+def _plan(feed: Any, mon: Any) -> _Plan | None:
+    """The monitor's plan, kept on the feed with the monitor it was made for (a refit brings a new
+    monitor, and a new plan)."""
+    kept = feed._quiet_plan
+    if kept is None or kept[0] is not mon:
+        kept = feed._quiet_plan = (mon, _Plan(mon) if COVERED_RULES.issuperset(mon.rules) else None)
+    return kept[1]
 
 
 def step_quiet(feed: Any, reading: Any, clock: Any) -> EngineOutput | None:
@@ -97,7 +98,7 @@ def step_quiet(feed: Any, reading: Any, clock: Any) -> EngineOutput | None:
     if not stream._steady or mon._settle is not None or mon._unconfirmed is not None \
             or mon._shock_candidate is not None or mon.level._level_before is not None:
         return None
-    plan = _plan(mon)
+    plan = _plan(feed, mon)
     if plan is None:
         return None
     for life in plan.lifecycles:
