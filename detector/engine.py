@@ -231,6 +231,12 @@ class Engine:
         """One feed's status dict (see ``FeedLifecycle.status``)."""
         return self._get(feed_id).status()
 
+    def counts(self) -> tuple[int, int]:
+        """(feeds, alarm episodes open now): what :meth:`status` would count, without building
+        every feed's status (a service's periodic summary at 10,000 feeds spent most of its time there)."""
+        active = sum(len(feed.monitor.open_events()) for feed in self._feeds.values() if feed.monitor is not None)
+        return len(self._feeds), active
+
     def status(self) -> list[dict[str, Any]]:
         """One JSON-serialisable dict per feed (see ``FeedLifecycle.status``), sorted by feed id."""
         return [self._feeds[fid].status() for fid in sorted(self._feeds)]

@@ -116,3 +116,24 @@ def test_readings_that_are_not_quiet_are_left_alone():
             assert [ev.rule for ev in out.events] == ["spike"]
         if value == 12.0:
             assert [ev.rule for ev in out.events] == ["range"]
+
+
+def test_the_engines_counts_are_those_of_its_status(brackenholt):
+    # Engine.counts (the service's periodic summary) against the full status of every feed,
+    # with episodes open part of the way through the district's faults
+    feeds, settings = brackenholt
+    engine = Engine(lambda feed_id: settings[feed_id])
+    readings = sorted(((e, h.feed_id, v) for h in feeds for e, v in zip(h.epoch_s.tolist(), h.values.tolist())),
+                      key=lambda r: r[0])
+    seen_open = False
+    for i, (epoch, feed_id, value) in enumerate(readings[:8 * 900]):
+        out = engine.process(Reading(feed_id, datetime.fromtimestamp(epoch, tz=timezone.utc), value))
+        for request in out.refit_requests:
+            fitted, thresholds = run_refit_with_thresholds(request)
+            engine.install_model(feed_id, fitted, 1 + i, request.reason, thresholds, request)
+        if i % 211 == 0:
+            status = engine.status()
+            active = sum(len(s["active_alarms"]) for s in status)
+            assert engine.counts() == (len(status), active)
+            seen_open = seen_open or active > 0
+    assert seen_open

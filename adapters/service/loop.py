@@ -454,18 +454,17 @@ class Service(FeedReports, Refits):
 
     def _summary(self, now: float) -> None:
         elapsed = max(now - self._last_summary, 1e-9)
-        status = self.engine.status()
-        active = sum(len(s.get("active_alarms", ())) for s in status)
+        feeds, active = self.engine.counts()
         depth = 0
         for source in self.sources:
             pending = getattr(source, "pending_messages", 0)
             depth += pending() if callable(pending) else pending
-        logger.info(log_fields("summary", readings_per_s=self._readings_since_summary / elapsed, feeds=len(status),
+        logger.info(log_fields("summary", readings_per_s=self._readings_since_summary / elapsed, feeds=feeds,
                                queue_depth=depth, alarms_active=active, refits_running=len(self._fits),
                                readings_total=self.readings_total, events_total=self.events_total,
                                rejects_total=self.rejects_total))
         if self.notifier is not None:
-            self.notifier.status(f"{self._readings_since_summary / elapsed:.1f} readings/s; {len(status)} feeds; "
+            self.notifier.status(f"{self._readings_since_summary / elapsed:.1f} readings/s; {feeds} feeds; "
                                  f"{active} alarms active; store {'down' if self.store_backoff.down else 'up'}")
         self._last_summary = now
         self._readings_since_summary = 0
