@@ -1,7 +1,10 @@
 """The byte container of a feed checkpoint: magic, version, JSON header, raw arrays.
 
 :func:`pack` and :func:`unpack` know nothing of feeds: :mod:`.feed_state`
-decides what goes into the header and the arrays. Layout of format 2: the
+decides what goes into the header and the arrays. The uncompressed layout
+itself (:func:`layout`, :func:`read_arrays`: a JSON header listing the
+arrays, then their raw bytes) is shared with the stream state
+(:meth:`Stream.to_bytes <leadline.detector.stream.Stream.to_bytes>`). Layout of format 2: the
 8-byte magic ``LLFEED01``, a uint16 format version, a uint32 length of the
 JSON header, then one zlib stream (level 1) holding the UTF-8 JSON header,
 whose ``"$arrays"`` lists each array's name, number type and shape, and

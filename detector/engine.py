@@ -71,7 +71,7 @@ class Engine:
         its first reading or its restore.
     quiet_steps : bool
         Take a quiet reading of a watching feed by :func:`~.quiet_step.step_quiet`
-        (the same result at about a third of the cost; default); False runs
+        (the same result at 55-75% of the cost; default); False runs
         every reading through the whole per-reading path (the reference the
         tests compare with).
     """

@@ -6,7 +6,7 @@ rule's state machine moves. :func:`step_quiet` recognises such a reading
 *before* it changes anything, and then leaves the feed exactly as
 :meth:`FeedLifecycle.process <leadline.detector.feed.FeedLifecycle.process>`
 would have left it, returning the same output (the scored innovation, and
-a refit request when one falls due), at about a third of the cost. It is the
+a refit request when one falls due), at 55-75% of the cost. It is the
 single-reading counterpart of :func:`~.quiet_run.advance_quiet`, the replay's
 bulk path, and shares its loop: the filter, the CUSUM and the flatline run
 are stepped by the same generated code (:func:`~.quiet_run._scan`), so their
