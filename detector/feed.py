@@ -147,7 +147,7 @@ class FeedLifecycle:
         self.last_seen: datetime | None = None
         self.meter_resets = 0
         self.incidents = IncidentGrouper()
-        self._quiet_plan: tuple[Any, Any] | None = None  # (monitor, its plan) of quiet_step
+        self._quiet_plan: tuple[Any, Any] | None = None  # (monitor, its plan): quiet_run.covered_plan
 
     # ------------------------------------------------------------- incidents
     def tag_events(self, out: EngineOutput) -> EngineOutput:

@@ -55,7 +55,7 @@ from .innovation import Innovation
 from .rules.flatline import repeat_probability
 from .stream import steady_step_source
 
-__all__ = ["QuietRun", "advance_quiet", "learn_quiet", "MAX_RUN", "COVERED_RULES"]
+__all__ = ["QuietPlan", "QuietRun", "advance_quiet", "covered_plan", "learn_quiet", "MAX_RUN", "COVERED_RULES"]
 
 #: Most readings taken in one run (bounds the arrays of one call).
 MAX_RUN = 4096
@@ -92,24 +92,53 @@ def _utc(epoch_s: float) -> datetime:
     return datetime.fromtimestamp(float(epoch_s), tz=timezone.utc)
 
 
-def _covered(feed: Any) -> bool:
-    """Whether the feed is in a state a quiet run can start from."""
+class QuietPlan:
+    """What quiet steps and runs of one monitor need, worked out once per monitor (its rules never
+    change; a refit brings a new monitor)."""
+
+    __slots__ = ("z_limit", "lifecycles", "windows", "cusum", "burst", "flat", "range", "stale", "timeout_s")
+
+    def __init__(self, mon: Any) -> None:
+        self.z_limit = _z_limit(mon)
+        self.lifecycles = tuple(mon.lifecycles.values())
+        # the on-delay windows that take a quiet step (all but the stale rule's, as _commit)
+        self.windows = tuple((life, life._window) for life in self.lifecycles if life.rule != "stale")
+        self.cusum = mon.cusum
+        self.burst = mon.noise_burst
+        self.flat = mon.rules.get("flatline")
+        self.range = mon.range
+        self.stale = mon.stale
+        # the stale limit in seconds (its own microsecond rounding is inside the 1 ms margin)
+        self.timeout_s = None if mon.stale is None else mon.stale.interval_s * mon.stale.missing_intervals
+
+
+def covered_plan(feed: Any) -> QuietPlan | None:
+    """The feed's :class:`QuietPlan` when the feed is in a state a quiet run or step can start
+    from, else None: watching with a steady filter, no refit requested or in flight, no counter,
+    only the rules :data:`COVERED_RULES`, no re-anchoring settling or waiting for confirmation,
+    no episode open, no level tracked, no CUSUM held.
+
+    The plan is kept on the feed with the monitor it was made for.
+    """
     if feed.state != "watching" or feed.pending is not None or feed.refit_due is not None \
             or feed.counter is not None or feed.monitor is None:
-        return False
+        return None
     mon = feed.monitor
-    stream = mon.stream
-    if not stream.is_steady:
-        return False
-    if not COVERED_RULES.issuperset(mon.rules):
-        return False
-    if mon._settle is not None or mon._unconfirmed is not None or mon._shock_candidate is not None:
-        return False
-    if any(life.is_active for life in mon.lifecycles.values()):
-        return False
-    if mon.level.tracking or (mon.cusum is not None and mon.cusum.cusum.holding):
-        return False
-    return True
+    if not mon.stream._steady or mon._settle is not None or mon._unconfirmed is not None \
+            or mon._shock_candidate is not None or mon.level._level_before is not None:
+        return None
+    kept = feed._quiet_plan
+    if kept is None or kept[0] is not mon:
+        kept = feed._quiet_plan = (mon, QuietPlan(mon) if COVERED_RULES.issuperset(mon.rules) else None)
+    plan = kept[1]
+    if plan is None:
+        return None
+    for life in plan.lifecycles:
+        if life._event is not None:
+            return None
+    if plan.cusum is not None and plan.cusum.cusum.holding:
+        return None
+    return plan
 
 
 def _limit(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoch_s: np.ndarray) -> int:
@@ -308,7 +337,7 @@ def advance_quiet(feed: Any, epoch_s: np.ndarray, values: np.ndarray, clock_epoc
         None when no run of at least :data:`MIN_RUN` readings can be taken;
         the feed is then unchanged.
     """
-    if not _covered(feed):
+    if covered_plan(feed) is None:
         return None
     epoch_s = np.asarray(epoch_s[:MAX_RUN], dtype=float)
     values = np.asarray(values[:MAX_RUN], dtype=float)

@@ -39,37 +39,9 @@ from typing import Any
 
 from .engine_output import EngineOutput
 from .innovation import Innovation
-from .quiet_run import _TIME_MARGIN_S, COVERED_RULES, _scan, _z_limit
+from .quiet_run import _TIME_MARGIN_S, QuietPlan, _scan, covered_plan
 
 __all__ = ["step_quiet"]
-
-
-class _Plan:
-    """What a monitor's quiet steps need, worked out once per monitor (its rules never change)."""
-
-    __slots__ = ("z_limit", "lifecycles", "windows", "cusum", "burst", "flat", "range", "stale", "timeout_s")
-
-    def __init__(self, mon: Any) -> None:
-        self.z_limit = _z_limit(mon)
-        self.lifecycles = tuple(mon.lifecycles.values())
-        # the on-delay windows that take a quiet step (all but the stale rule's, as quiet_run._commit)
-        self.windows = tuple((life, life._window) for life in self.lifecycles if life.rule != "stale")
-        self.cusum = mon.cusum
-        self.burst = mon.noise_burst
-        self.flat = mon.rules.get("flatline")
-        self.range = mon.range
-        self.stale = mon.stale
-        # the stale limit in seconds (its own microsecond rounding is inside the 1 ms margin)
-        self.timeout_s = None if mon.stale is None else mon.stale.interval_s * mon.stale.missing_intervals
-
-
-def _plan(feed: Any, mon: Any) -> _Plan | None:
-    """The monitor's plan, kept on the feed with the monitor it was made for (a refit brings a new
-    monitor, and a new plan)."""
-    kept = feed._quiet_plan
-    if kept is None or kept[0] is not mon:
-        kept = feed._quiet_plan = (mon, _Plan(mon) if COVERED_RULES.issuperset(mon.rules) else None)
-    return kept[1]
 
 
 def step_quiet(feed: Any, reading: Any, clock: Any) -> EngineOutput | None:
@@ -90,23 +62,11 @@ def step_quiet(feed: Any, reading: Any, clock: Any) -> EngineOutput | None:
         events; the innovation; a refit request at most), or None when the
         reading is not quiet, with the feed unchanged.
     """
-    if feed.state != "watching" or feed.pending is not None or feed.refit_due is not None \
-            or feed.counter is not None:
+    plan = covered_plan(feed)
+    if plan is None:
         return None
     mon = feed.monitor
     stream = mon.stream
-    if not stream._steady or mon._settle is not None or mon._unconfirmed is not None \
-            or mon._shock_candidate is not None or mon.level._level_before is not None:
-        return None
-    plan = _plan(feed, mon)
-    if plan is None:
-        return None
-    for life in plan.lifecycles:
-        if life._event is not None:
-            return None
-    cusum = plan.cusum
-    if cusum is not None and cusum.cusum.holding:
-        return None
     ts = reading.timestamp
     if ts.tzinfo is None:
         return None
@@ -161,7 +121,7 @@ def step_quiet(feed: Any, reading: Any, clock: Any) -> EngineOutput | None:
                    flat_state, burst_q)
 
 
-def _commit(feed: Any, mon: Any, stream: Any, plan: _Plan, ts: Any, epoch: float, value: float,
+def _commit(feed: Any, mon: Any, stream: Any, plan: QuietPlan, ts: Any, epoch: float, value: float,
             level_value: float, a: tuple, f: float, z: float, cusum_state: tuple, flat_state: tuple,
             burst_q: float | None) -> EngineOutput:
     """Leave the feed as the per-reading path leaves it after this reading (cf. ``quiet_run._commit``)."""
