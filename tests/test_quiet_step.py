@@ -19,8 +19,10 @@ import numpy as np
 import pytest
 
 from leadline.detector.engine import Engine, run_refit_with_thresholds
+from leadline.detector.feed_settings import FeedSettings
 from leadline.detector.readings import Reading
 from leadline.detector.rules import MonitorConfig
+from leadline.detector.spec import ModelSpec
 from test_quiet_run import INTERVAL_S, site
 
 
@@ -87,35 +89,37 @@ def test_a_feed_with_an_uncovered_rule_takes_the_per_reading_path(brackenholt):
 
 
 def test_readings_that_are_not_quiet_are_left_alone():
-    # white noise, sigma limits: a reading at 6 sigma is a spike, one beyond the range a range alarm,
-    # one off the grid or late is placed by the per-reading path; none of them is a quiet step
+    # white noise, sigma limits: from one saved state, each case is the feed's next reading in an
+    # engine of its own, so each is kept from the quiet step by its own condition alone: a reading
+    # at 6 sigma (a spike), one just beyond the range (a range alarm at a z no other rule minds),
+    # one off the grid, one late
     rng = np.random.default_rng(31)
     start = datetime(2026, 5, 4, tzinfo=timezone.utc)
-    from leadline.detector.feed_settings import FeedSettings
-    from leadline.detector.spec import ModelSpec
     settings = FeedSettings(spec=ModelSpec.white_noise(), interval_s=INTERVAL_S, train_points=100,
                             min_train_points=50, refit_every_s=None, threshold_mode="sigma",
-                            monitor=MonitorConfig(range_low=-10.0, range_high=10.0))
-    engine = Engine(lambda feed_id: settings)
-    values = rng.standard_normal(400)
-    for k, v in enumerate(values[:300]):
-        for request in engine.process(Reading("brackenholt/t", start + timedelta(seconds=k * INTERVAL_S),
-                                              float(v))).refit_requests:
+                            monitor=MonitorConfig(range_low=-3.0, range_high=10.0))
+    feed_id = "brackenholt/t"
+    engine = Engine(lambda _: settings)
+    for k, value in enumerate(np.clip(rng.standard_normal(300), -2.5, 2.5)):
+        out = engine.process(Reading(feed_id, start + timedelta(seconds=k * INTERVAL_S), float(value)))
+        for request in out.refit_requests:
             fitted, thresholds = run_refit_with_thresholds(request)
-            engine.install_model("brackenholt/t", fitted, 1, request.reason, thresholds, request)
-    assert engine.state_of("brackenholt/t") == "watching"
-    at = lambda k: start + timedelta(seconds=k * INTERVAL_S)  # noqa: E731
-    before = engine.quiet_readings
-    engine.process(Reading("brackenholt/t", at(300), 0.1))
-    assert engine.quiet_readings == before + 1  # the control: a plain reading is quiet
-    for k, value in ((301.4, 0.1), (302, 6.0), (303, 12.0), (300, 0.2)):
-        before = engine.quiet_readings
-        out = engine.process(Reading("brackenholt/t", at(k), value))
-        assert engine.quiet_readings == before, (k, value)
-        if value == 6.0:
-            assert [ev.rule for ev in out.events] == ["spike"]
-        if value == 12.0:
-            assert [ev.rule for ev in out.events] == ["range"]
+            engine.install_model(feed_id, fitted, 1, request.reason, thresholds, request)
+    assert engine.state_of(feed_id) == "watching"
+    saved = engine.checkpoint(feed_id)
+
+    def next_reading(slot: float, value: float) -> tuple[int, list[str]]:
+        fresh = Engine(lambda _: settings)
+        fresh.restore(feed_id, saved, 1)
+        fresh.tick(start + timedelta(seconds=299 * INTERVAL_S))  # delivers the restore's output
+        out = fresh.process(Reading(feed_id, start + timedelta(seconds=slot * INTERVAL_S), value))
+        return fresh.quiet_readings, [event.rule for event in out.events]
+
+    assert next_reading(300, 0.1) == (1, [])  # the control: a plain next reading is quiet
+    assert next_reading(300, 6.0) == (0, ["spike"])
+    assert next_reading(300, -3.05) == (0, ["range"])  # beyond the range, its z inside every limit
+    assert next_reading(300.4, 0.1) == (0, [])  # off the grid
+    assert next_reading(299, 0.2) == (0, [])  # late: the slot was taken
 
 
 def test_the_engines_counts_are_those_of_its_status(brackenholt):
